@@ -1,0 +1,99 @@
+"""Particle snapshot readers.
+
+Every reader turns the files of one snapshot into a :class:`SnapshotHeader` and an
+iterator of :class:`Chunk` objects (positions in Mpc/h, masses in 1e10 Msun/h, one
+species per chunk), so that slicing never holds more than one chunk of particles.
+A new format is one module here exposing ``read_header(files, length_unit)`` and
+``iter_chunks(files, header, species, chunk_size)``, plus its name in ``FORMATS``.
+"""
+
+from __future__ import annotations
+
+import importlib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Iterator, Sequence
+
+import numpy as np
+
+from ..errors import RaytraceError
+
+#: critical density in units of 1e10 Msun/h per (Mpc/h)^3: 3 H0^2 / (8 pi G) with
+#: H0 = 100 h km/s/Mpc is 2.77536627e11 h^2 Msun/Mpc^3 (standard value, e.g. the
+#: Particle Data Group's astrophysical constants table).
+RHO_CRIT_1E10_MSUN_H_PER_MPC_H3 = 27.7536627
+
+FORMATS = {"hdf5": "hdf5"}
+
+#: length unit name -> factor converting to Mpc/h
+LENGTH_UNITS = {"Mpc/h": 1.0, "kpc/h": 1.0e-3}
+
+
+@dataclass
+class SnapshotHeader:
+    """What slicing needs to know about one snapshot (all of its files)."""
+
+    files: list[Path]
+    box_mpc_h: float
+    redshift: float
+    omega_m: float
+    omega_lambda: float
+    h: float
+    #: particles per species over all files
+    n_total: dict[int, int]
+    #: constant particle mass per species (1e10 Msun/h), 0 where masses are per particle
+    mass_table: dict[int, float]
+    #: factor converting file lengths to Mpc/h
+    length_to_mpc_h: float = 1.0
+    #: particles per species in each file
+    n_per_file: list[dict[int, int]] = field(default_factory=list)
+
+    @property
+    def scale_factor(self) -> float:
+        return 1.0 / (1.0 + self.redshift)
+
+
+@dataclass
+class Chunk:
+    species: int
+    positions: np.ndarray  # (n, 3) float, Mpc/h, inside [0, box)
+    masses: np.ndarray  # (n,) float, 1e10 Msun/h
+
+
+def reader_module(fmt: str):
+    if fmt not in FORMATS:
+        raise RaytraceError(f"format: unknown snapshot format {fmt!r} (known: {', '.join(FORMATS)})")
+    return importlib.import_module(f"{__name__}.{FORMATS[fmt]}")
+
+
+def read_header(files: Sequence[str | Path], fmt: str = "hdf5", length_unit: str | None = None) -> SnapshotHeader:
+    """Header of the snapshot made of ``files`` (all files of one snapshot, any order)."""
+    files = [Path(f) for f in files]
+    if not files:
+        raise RaytraceError("snapshot: no files given")
+    for f in files:
+        if not f.exists():
+            raise RaytraceError(f"{f}: snapshot file does not exist")
+    return reader_module(fmt).read_header(files, length_unit)
+
+
+def iter_chunks(
+    header: SnapshotHeader, species: Sequence[int], fmt: str = "hdf5", chunk_size: int = 1 << 21
+) -> Iterator[Chunk]:
+    """Stream the particles of the chosen species in chunks of at most ``chunk_size``."""
+    # readers call check_chunk themselves, so that errors name the file at fault
+    yield from reader_module(fmt).iter_chunks(header, list(species), chunk_size)
+
+
+def check_chunk(chunk: Chunk, header: SnapshotHeader, source: str | Path = "") -> None:
+    """Reject NaN or out-of-box positions with the file named."""
+    pos = chunk.positions
+    where = source or (header.files[0] if len(header.files) == 1 else header.files[0].parent)
+    if not np.all(np.isfinite(pos)):
+        raise RaytraceError(f"{where}: non-finite particle positions in species {chunk.species}")
+    lo, hi = float(pos.min(initial=0.0)), float(pos.max(initial=0.0))
+    # a tolerance of one part in 1e6 allows float32 rounding at the box edge
+    if lo < -1e-6 * header.box_mpc_h or hi > header.box_mpc_h * (1 + 1e-6):
+        raise RaytraceError(
+            f"{where}: particle positions outside the box [0, {header.box_mpc_h}] Mpc/h (range {lo:g} to {hi:g})"
+        )
