@@ -4,12 +4,13 @@ Every reader turns the files of one snapshot into a :class:`SnapshotHeader` and 
 iterator of :class:`Chunk` objects (positions in Mpc/h, masses in 1e10 Msun/h, one
 species per chunk), so that slicing never holds more than one chunk of particles.
 A new format is one module here exposing ``read_header(files, length_unit)`` and
-``iter_chunks(files, header, species, chunk_size)``, plus its name in ``FORMATS``.
+``iter_chunks(header, species, chunk_size)``, plus its name in ``FORMATS``.
 """
 
 from __future__ import annotations
 
 import importlib
+import struct
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterator, Sequence
@@ -23,7 +24,7 @@ from ..errors import RaytraceError
 #: Particle Data Group's astrophysical constants table).
 RHO_CRIT_1E10_MSUN_H_PER_MPC_H3 = 27.7536627
 
-FORMATS = {"hdf5": "hdf5"}
+FORMATS = {"hdf5": "hdf5", "legacy-binary": "legacy_binary"}
 
 #: length unit name -> factor converting to Mpc/h
 LENGTH_UNITS = {"Mpc/h": 1.0, "kpc/h": 1.0e-3}
@@ -64,6 +65,42 @@ def reader_module(fmt: str):
     if fmt not in FORMATS:
         raise RaytraceError(f"format: unknown snapshot format {fmt!r} (known: {', '.join(FORMATS)})")
     return importlib.import_module(f"{__name__}.{FORMATS[fmt]}")
+
+
+#: HDF5 file signature; the superblock sits at offset 0 or, after a user block, at
+#: 512, 1024, 2048, ... bytes (HDF5 file format specification, "Format Signature")
+_HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
+
+
+def detect_format(path: str | Path) -> str:
+    """``"hdf5"`` or ``"legacy-binary"`` from the first bytes of ``path``.
+
+    The legacy layout starts with a record marker: 256 (the header record) or 8 (a
+    block label record holding ``HEAD``) in either byte order; the reader then checks
+    every marker itself, so a damaged legacy file is reported by the reader.
+    """
+    path = Path(path)
+    try:
+        with open(path, "rb") as f:
+            head = f.read(8)
+            if head == _HDF5_SIGNATURE:
+                return "hdf5"
+            if len(head) == 8:
+                for bo in ("<", ">"):
+                    (first,) = struct.unpack(bo + "i", head[:4])
+                    if first == 256 or (first == 8 and head[4:8] == b"HEAD"):
+                        return "legacy-binary"
+            size, offset = f.seek(0, 2), 512
+            while offset + 8 <= size:
+                f.seek(offset)
+                if f.read(8) == _HDF5_SIGNATURE:
+                    return "hdf5"
+                offset *= 2
+    except OSError as exc:
+        raise RaytraceError(f"{path}: cannot read snapshot file ({exc})") from None
+    raise RaytraceError(
+        f"{path}: neither an HDF5 file nor a legacy binary snapshot (first bytes {head.hex() or 'none: empty file'})"
+    )
 
 
 def read_header(files: Sequence[str | Path], fmt: str = "hdf5", length_unit: str | None = None) -> SnapshotHeader:

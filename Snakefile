@@ -1,0 +1,43 @@
+# raytrace: N-body snapshots -> lens planes -> ray-traced maps -> statistics.
+# Rules are thin: each names its files, params, resources and log, and calls one
+# `raytrace` subcommand with the configuration section it depends on.
+import json
+import shlex
+import sys
+
+from snakemake.utils import min_version, validate
+
+min_version("8.0")
+
+
+# the default demo suite, unless a configuration is given on the command line
+# (--configfile would otherwise be merged key by key into the default one)
+if not config:
+
+    configfile: "config/config.yaml"
+
+
+
+import raytrace.config as rtconfig
+from raytrace.errors import RaytraceError
+
+try:
+    # our validator first: one line naming the key; snakemake's then fills defaults
+    rtconfig.validate(config)
+except RaytraceError as exc:
+    sys.exit(f"raytrace: configuration error: {exc}")
+validate(config, "config/schema.yaml")
+config = rtconfig.validate(config)
+
+
+include: "workflow/rules/common.smk"
+include: "workflow/rules/simulate.smk"
+include: "workflow/rules/slice.smk"
+include: "workflow/rules/trace.smk"
+include: "workflow/rules/measure.smk"
+
+
+rule all:
+    input:
+        statistics_files(),
+    default_target: True

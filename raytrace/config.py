@@ -1,0 +1,199 @@
+"""Load and validate the configuration, expand models, derive the lens-plane schedule.
+
+The JSON Schema (``raytrace/schema.yaml``, linked as ``config/schema.yaml``) is the
+single description of every key; this module adds the checks a schema cannot express
+(a slab thickness that divides the box, sources inside the planes ...). Every problem
+becomes a one-line :class:`~raytrace.errors.RaytraceError` naming the key.
+"""
+
+from __future__ import annotations
+
+import copy
+import os
+from dataclasses import dataclass
+from importlib import resources
+from pathlib import Path
+from typing import Any, Mapping
+
+import numpy as np
+import yaml
+
+from .cosmology import PARAMETER_NAMES, Cosmology
+from .errors import RaytraceError
+
+
+def schema() -> dict:
+    """The configuration's JSON Schema."""
+    return yaml.safe_load(resources.files("raytrace").joinpath("schema.yaml").read_text())
+
+
+def _key_path(error) -> str:
+    return ".".join(str(p) for p in error.absolute_path)
+
+
+def describe_error(error) -> str:
+    """One line naming the key at fault for a ``jsonschema`` validation error."""
+    path = _key_path(error)
+    if error.validator == "additionalProperties":
+        known = set(error.schema.get("properties", {}))
+        extra = sorted(set(error.instance) - known) if isinstance(error.instance, dict) else []
+        key = ".".join(filter(None, [path, extra[0] if extra else "?"]))
+        return f"{key}: unknown key"
+    if error.validator == "required":
+        missing = error.message.split("'")[1] if "'" in error.message else error.message
+        return f"{'.'.join(filter(None, [path, missing]))}: required key is missing"
+    if error.validator == "propertyNames":
+        return f"{path}.{error.instance}: invalid name (letters, digits, '_', '.', '-' only)"
+    return f"{path or '<top level>'}: {error.message}"
+
+
+def _set_defaults(instance: Any, sch: Mapping, root: Mapping) -> None:
+    """Fill defaults from the schema (what ``snakemake.utils.validate(set_default=True)`` does)."""
+    if "$ref" in sch:
+        name = sch["$ref"].split("/")[-1]
+        sch = root["definitions"][name]
+    for sub in sch.get("allOf", []):
+        _set_defaults(instance, sub, root)
+    if isinstance(instance, dict):
+        for key, sub in sch.get("properties", {}).items():
+            if key not in instance and "default" in sub:
+                instance[key] = copy.deepcopy(sub["default"])
+            if key in instance:
+                _set_defaults(instance[key], sub, root)
+        extra = sch.get("additionalProperties")
+        if isinstance(extra, dict):
+            for key, value in instance.items():
+                if key not in sch.get("properties", {}):
+                    _set_defaults(value, extra, root)
+
+
+def validate(config: Mapping[str, Any]) -> dict:
+    """Validate ``config`` against the schema and the cross-key rules; return it with defaults."""
+    import jsonschema
+
+    sch = schema()
+    validator = jsonschema.Draft7Validator(sch)
+    errors = sorted(validator.iter_errors(config), key=lambda e: (len(list(e.absolute_path)), _key_path(e)))
+    if errors:
+        raise RaytraceError(describe_error(jsonschema.exceptions.best_match(errors)))
+    cfg = copy.deepcopy(dict(config))
+    _set_defaults(cfg, sch, sch)
+    _check_semantics(cfg)
+    return cfg
+
+
+def load(path: str | os.PathLike) -> dict:
+    """Read a YAML configuration file and validate it."""
+    p = Path(path)
+    if not p.exists():
+        raise RaytraceError(f"{p}: configuration file does not exist")
+    try:
+        raw = yaml.safe_load(p.read_text()) or {}
+    except yaml.YAMLError as exc:
+        raise RaytraceError(f"{p}: not valid YAML ({exc})") from None
+    if not isinstance(raw, dict):
+        raise RaytraceError(f"{p}: the configuration must be a mapping of keys")
+    return validate(raw)
+
+
+# ------------------------------------------------------------------------------------
+def model_names(cfg: Mapping) -> list[str]:
+    return list(cfg["suite"]["models"])
+
+
+def model_parameters(cfg: Mapping, model: str) -> dict[str, float]:
+    """The fiducial with the model's offsets applied."""
+    models = cfg["suite"]["models"]
+    if model not in models:
+        raise RaytraceError(f"suite.models.{model}: no such model")
+    params = dict(cfg["suite"]["fiducial"])
+    params.update(models[model] or {})
+    return {k: float(params[k]) for k in PARAMETER_NAMES}
+
+
+def model_cosmology(cfg: Mapping, model: str) -> Cosmology:
+    return Cosmology.from_mapping(model_parameters(cfg, model), where=f"suite.models.{model}")
+
+
+def snapshot_redshifts(cfg: Mapping) -> list[float]:
+    return sorted(float(z) for z in cfg["suite"]["snapshot_redshifts"])
+
+
+@dataclass(frozen=True)
+class PlaneSchedule:
+    """Lens planes along the line of sight: slab k spans [chi_lo[k], chi_hi[k]] (Mpc/h)."""
+
+    chi_lo: np.ndarray
+    chi_hi: np.ndarray
+    chi: np.ndarray  # slab centre
+    z: np.ndarray  # redshift of the slab centre
+    snapshot: np.ndarray  # index (into the sorted snapshot redshifts) of the nearest snapshot
+
+    @property
+    def n_planes(self) -> int:
+        return len(self.chi)
+
+    @property
+    def thickness(self) -> np.ndarray:
+        return self.chi_hi - self.chi_lo
+
+
+def plane_schedule(cosmo: Cosmology, thickness_mpc_h: float, z_max: float, snapshot_z: list[float]) -> PlaneSchedule:
+    """Slabs of equal comoving thickness from the observer out to redshift ``z_max``.
+
+    Each slab takes the snapshot nearest in redshift to its centre.
+    """
+    chi_max = float(cosmo.comoving_distance(z_max))
+    n = max(1, int(np.ceil(chi_max / thickness_mpc_h - 1e-9)))
+    chi_lo = np.arange(n) * thickness_mpc_h
+    chi_hi = chi_lo + thickness_mpc_h
+    chi = 0.5 * (chi_lo + chi_hi)
+    z = cosmo.redshift_at(chi)
+    snaps = np.asarray(snapshot_z)
+    nearest = np.argmin(np.abs(z[:, None] - snaps[None, :]), axis=1)
+    return PlaneSchedule(chi_lo, chi_hi, chi, z, nearest)
+
+
+def schedule_for_model(cfg: Mapping, model: str) -> PlaneSchedule:
+    cosmo = model_cosmology(cfg, model)
+    z_src = max(cfg["maps"]["source_redshifts"])
+    return plane_schedule(cosmo, cfg["planes"]["thickness_mpc_h"], z_src, snapshot_redshifts(cfg))
+
+
+def max_plane_redshift(cfg: Mapping) -> float:
+    """Planes use snapshots; they reach at most the highest snapshot redshift."""
+    return max(snapshot_redshifts(cfg))
+
+
+def _check_semantics(cfg: dict) -> None:
+    suite = cfg["suite"]
+    for name, offsets in suite["models"].items():
+        for key in offsets or {}:
+            if key not in PARAMETER_NAMES:
+                raise RaytraceError(f"suite.models.{name}.{key}: unknown parameter")
+    if "snapshot_redshifts" not in suite:
+        raise RaytraceError("suite.snapshot_redshifts: required key is missing")
+    zs = suite["snapshot_redshifts"]
+    if len(set(zs)) != len(zs):
+        raise RaytraceError("suite.snapshot_redshifts: redshifts must be distinct")
+    box, t = float(suite["box_mpc_h"]), float(cfg["planes"]["thickness_mpc_h"])
+    n_slabs = box / t
+    if abs(n_slabs - round(n_slabs)) > 1e-6 or round(n_slabs) < 1:
+        raise RaytraceError(f"planes.thickness_mpc_h: {t} does not divide suite.box_mpc_h = {box}")
+    srcs = cfg["maps"]["source_redshifts"]
+    if sorted(srcs) != list(srcs) or len(set(srcs)) != len(srcs):
+        raise RaytraceError("maps.source_redshifts: must be distinct and increasing")
+    z_last = max_plane_redshift(cfg)
+    for z in srcs:
+        if z > z_last + 1e-9:
+            raise RaytraceError(
+                f"maps.source_redshifts: source at z = {z} lies beyond the last lens plane "
+                f"(planes end at the highest snapshot redshift, z = {z_last})"
+            )
+    for name in suite["models"]:
+        model_cosmology(cfg, name)  # rejects impossible parameter combinations
+    ps = cfg.get("statistics", {}).get("power_spectrum")
+    if ps and ps.get("ell_min") and ps.get("ell_max") and ps["ell_min"] >= ps["ell_max"]:
+        raise RaytraceError("statistics.power_spectrum.ell_max: must exceed ell_min")
+    if ps and ps.get("ell_edges") is not None and list(ps["ell_edges"]) != sorted(set(ps["ell_edges"])):
+        raise RaytraceError("statistics.power_spectrum.ell_edges: must be strictly increasing")

@@ -1,0 +1,386 @@
+r"""Flat-sky ray tracing through lens planes: multi-plane and Born approximation.
+
+Geometry (comoving, flat universe). A ray leaves the observer in direction
+:math:`\boldsymbol\theta`; its transverse comoving position :math:`\mathbf x` and
+direction :math:`\mathbf u = d\mathbf x/d\chi` obey, for thin planes at :math:`\chi_k`,
+
+.. math::
+    \mathbf x_{k} = \mathbf x_{k-1} + (\chi_k - \chi_{k-1})\,\mathbf u_{k-1}, \qquad
+    \mathbf u_k = \mathbf u_{k-1} - \nabla\psi_k(\mathbf x_k),
+
+with :math:`\mathbf x_0 = 0`, :math:`\mathbf u_0 = \boldsymbol\theta`, and the plane's
+lensing potential :math:`\nabla^2\psi_k = 3\Omega_m (H_0/c)^2 (1+z_k)\,\bar\delta_k\,\Delta\chi_k`.
+Differentiating with respect to :math:`\boldsymbol\theta` carries the Jacobians
+:math:`X = \partial\mathbf x/\partial\boldsymbol\theta` and
+:math:`U = \partial\mathbf u/\partial\boldsymbol\theta` along:
+:math:`X_k = X_{k-1} + \Delta\chi\,U_{k-1}`, :math:`U_k = U_{k-1} - T_k X_k` with the
+tidal matrix :math:`T_k = \partial_i\partial_j\psi_k`. At a source at :math:`\chi_s`
+the distortion matrix is :math:`A = X_s/\chi_s`. This is the multiple-lens-plane
+recursion of Schneider, Ehlers & Falco (1992, ch. 9) and Hilbert et al. (2009, sec.
+2.2), written in comoving positions. The Born approximation evaluates the same planes on
+the unperturbed rays, :math:`A = I - \sum_k \frac{\chi_k(\chi_s-\chi_k)}{\chi_s} T_k(\chi_k\boldsymbol\theta)`,
+so :math:`\kappa = \sum_k \tfrac32\Omega_m (H_0/c)^2 (1+z_k)\frac{\chi_k(\chi_s-\chi_k)}{\chi_s}\bar\delta_k\Delta\chi_k`.
+
+Conventions. :math:`A = \begin{pmatrix}1-\kappa-\gamma_1 & -\gamma_2+\omega\\
+-\gamma_2-\omega & 1-\kappa+\gamma_1\end{pmatrix}` (Hilbert et al. 2009, eq. 6,
+from memory), i.e. :math:`\kappa = 1 - (A_{xx}+A_{yy})/2`, :math:`\gamma_1 = (A_{yy}-A_{xx})/2`,
+:math:`\gamma_2 = -(A_{xy}+A_{yx})/2`, :math:`\omega = (A_{xy}-A_{yx})/2`. In the weak
+limit :math:`\gamma_1 = (\psi_{,xx}-\psi_{,yy})/2`, :math:`\gamma_2 = \psi_{,xy}`: positive
+:math:`\gamma_1` stretches images along x (map axis 1), positive :math:`\gamma_2`
+along the diagonal x = y. Map arrays are [iy, ix]; pixel [i, j] is the ray with
+:math:`\theta_y = (i+\tfrac12)\Delta - F/2`, :math:`\theta_x = (j+\tfrac12)\Delta - F/2`.
+
+Sources need not sit on slab boundaries: for a source inside a slab, the part of the
+slab in front of it acts as a plane at its own centre with its share of the slab's mass,
+in both methods.
+
+Interpolation: the planes' potential derivatives are interpolated bilinearly (cell
+centres at :math:`(i+\tfrac12)` cells) at the ray positions.
+
+References
+----------
+Schneider, P., Ehlers, J. & Falco, E. E. 1992, *Gravitational Lenses*, Springer.
+Hilbert, S., Hartlap, J., White, S. D. M. & Schneider, P. 2009, A&A 499, 31.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable, Mapping, Sequence
+
+import numpy as np
+from numba import njit
+
+from .config import PlaneSchedule
+from .cosmology import C_KM_S, Cosmology
+from .errors import RaytraceError
+
+#: H0/c in h/Mpc
+H0_OVER_C = 100.0 / C_KM_S
+
+N_STATE = 12  # x, y, ux, uy, Xxx, Xxy, Xyx, Xyy, Uxx, Uxy, Uyx, Uyy
+
+
+@dataclass(frozen=True)
+class PlaneChoice:
+    """How one realisation uses each plane: per-plane arrays of equal length."""
+
+    snapshot: np.ndarray
+    axis: np.ndarray
+    slab: np.ndarray
+    shift: np.ndarray  # (n, 2) Mpc/h, x and y
+    flip: np.ndarray  # (n, 2) +1 or -1
+
+
+def realization_seed(seed: int, realization: int) -> np.random.SeedSequence:
+    """Seed stream of one realisation's plane choices (the same in every model)."""
+    return np.random.SeedSequence([int(seed), 1, int(realization)])
+
+
+def choose_planes(
+    schedule: PlaneSchedule, n_slabs: int, box_mpc_h: float, seed: int, realization: int, randomize: bool = True
+) -> PlaneChoice:
+    """Draw axis, slab, periodic shift and flips of every plane from a seeded generator.
+
+    With ``randomize=False`` every plane is used as it is: projected along the box's
+    third axis, the slab that the line of sight crosses at that distance, no shift, no
+    flip (a straight, periodic light cone through the box).
+    """
+    n = schedule.n_planes
+    rng = np.random.default_rng(realization_seed(seed, realization))
+    axis = rng.integers(0, 3, size=n)
+    slab = rng.integers(0, n_slabs, size=n)
+    shift = rng.uniform(0.0, box_mpc_h, size=(n, 2))
+    flip = rng.choice(np.array([-1, 1]), size=(n, 2))
+    if not randomize:
+        t = box_mpc_h / n_slabs
+        axis = np.full(n, 2)
+        slab = (np.floor(schedule.chi_lo / t + 1e-9).astype(int)) % n_slabs
+        shift = np.zeros((n, 2))
+        flip = np.ones((n, 2), dtype=int)
+    return PlaneChoice(schedule.snapshot.copy(), axis, slab, shift, flip)
+
+
+# ------------------------------------------------------------------------------------
+# compiled kernels
+@njit(cache=True, nogil=True, inline="always")
+def _bilinear_setup(px, py, inv_cell, grid):
+    ux = px * inv_cell - 0.5
+    uy = py * inv_cell - 0.5
+    fx0 = np.floor(ux)
+    fy0 = np.floor(uy)
+    fx = ux - fx0
+    fy = uy - fy0
+    ix0 = int(fx0) % grid
+    iy0 = int(fy0) % grid
+    ix1 = ix0 + 1 if ix0 + 1 < grid else 0
+    iy1 = iy0 + 1 if iy0 + 1 < grid else 0
+    return ix0, ix1, iy0, iy1, fx, fy
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _interp(f, ix0, ix1, iy0, iy1, fx, fy):
+    return (1.0 - fy) * ((1.0 - fx) * f[iy0, ix0] + fx * f[iy0, ix1]) + fy * ((1.0 - fx) * f[iy1, ix0] + fx * f[iy1, ix1])
+
+
+@njit(cache=True, nogil=True)
+def multiplane_step(state, dchi, f1x, f1y, fxx, fyy, fxy, box, shift_x, shift_y, flip_x, flip_y, strength):
+    """Drift every ray by ``dchi`` and deflect it at a plane (state is (12, n_rays))."""
+    grid = f1x.shape[0]
+    inv_cell = grid / box
+    half = 0.5 * box
+    sxy = flip_x * flip_y
+    for r in range(state.shape[1]):
+        x = state[0, r] + dchi * state[2, r]
+        y = state[1, r] + dchi * state[3, r]
+        Xxx = state[4, r] + dchi * state[8, r]
+        Xxy = state[5, r] + dchi * state[9, r]
+        Xyx = state[6, r] + dchi * state[10, r]
+        Xyy = state[7, r] + dchi * state[11, r]
+        px = (flip_x * x + shift_x + half) % box
+        py = (flip_y * y + shift_y + half) % box
+        ix0, ix1, iy0, iy1, fx, fy = _bilinear_setup(px, py, inv_cell, grid)
+        gx = flip_x * _interp(f1x, ix0, ix1, iy0, iy1, fx, fy)
+        gy = flip_y * _interp(f1y, ix0, ix1, iy0, iy1, fx, fy)
+        txx = _interp(fxx, ix0, ix1, iy0, iy1, fx, fy)
+        tyy = _interp(fyy, ix0, ix1, iy0, iy1, fx, fy)
+        txy = sxy * _interp(fxy, ix0, ix1, iy0, iy1, fx, fy)
+        state[0, r] = x
+        state[1, r] = y
+        state[2, r] -= strength * gx
+        state[3, r] -= strength * gy
+        state[4, r] = Xxx
+        state[5, r] = Xxy
+        state[6, r] = Xyx
+        state[7, r] = Xyy
+        state[8, r] -= strength * (txx * Xxx + txy * Xyx)
+        state[9, r] -= strength * (txx * Xxy + txy * Xyy)
+        state[10, r] -= strength * (txy * Xxx + tyy * Xyx)
+        state[11, r] -= strength * (txy * Xxy + tyy * Xyy)
+
+
+@njit(cache=True, nogil=True)
+def born_tidal(theta_x, theta_y, chi, fxx, fyy, fxy, box, shift_x, shift_y, flip_x, flip_y, out):
+    """Tidal matrix (Txx, Tyy, Txy) of one plane on the unperturbed rays, into out (3, n)."""
+    grid = fxx.shape[0]
+    inv_cell = grid / box
+    half = 0.5 * box
+    sxy = flip_x * flip_y
+    for r in range(theta_x.shape[0]):
+        px = (flip_x * chi * theta_x[r] + shift_x + half) % box
+        py = (flip_y * chi * theta_y[r] + shift_y + half) % box
+        ix0, ix1, iy0, iy1, fx, fy = _bilinear_setup(px, py, inv_cell, grid)
+        out[0, r] = _interp(fxx, ix0, ix1, iy0, iy1, fx, fy)
+        out[1, r] = _interp(fyy, ix0, ix1, iy0, iy1, fx, fy)
+        out[2, r] = sxy * _interp(fxy, ix0, ix1, iy0, iy1, fx, fy)
+
+
+# ------------------------------------------------------------------------------------
+def ray_grid(field_deg: float, pixels: int) -> tuple[np.ndarray, np.ndarray]:
+    """Ray directions (radians) at pixel centres, flattened in [iy, ix] order."""
+    field = np.deg2rad(field_deg)
+    d = field / pixels
+    c = (np.arange(pixels) + 0.5) * d - 0.5 * field
+    ty, tx = np.meshgrid(c, c, indexing="ij")
+    return tx.ravel().copy(), ty.ravel().copy()
+
+
+@dataclass(frozen=True)
+class LensStep:
+    """One thin lens as the tracer applies it: plane index, distance, strength."""
+
+    plane: int
+    chi: float
+    strength: float  # multiplies the stored potential derivatives
+
+
+@dataclass(frozen=True)
+class SourcePath:
+    """The lenses in front of one source: full planes then at most one partial plane."""
+
+    chi_s: float
+    full: int  # number of full planes in front (planes 0 .. full-1)
+    partial: LensStep | None
+
+
+def lens_strength(cosmo: Cosmology, z: float, fraction: float = 1.0) -> float:
+    r""":math:`3\Omega_m (H_0/c)^2 (1+z)` times the fraction of the slab's thickness used."""
+    return 3.0 * cosmo.Omega_m * H0_OVER_C**2 * (1.0 + z) * fraction
+
+
+def source_paths(cosmo: Cosmology, schedule: PlaneSchedule, source_redshifts: Sequence[float]) -> list[SourcePath]:
+    """Which planes lens each source; a source inside a slab gets a partial plane."""
+    paths = []
+    chi_last = schedule.chi_hi[-1]
+    tol = 1e-6 * max(1.0, float(chi_last))
+    for zs in source_redshifts:
+        chi_s = float(cosmo.comoving_distance(zs))
+        if chi_s > chi_last + tol:
+            raise RaytraceError(
+                f"maps.source_redshifts: source at z = {zs} lies beyond the last lens plane "
+                f"(z = {float(cosmo.redshift_at(chi_last)):.3f})"
+            )
+        full = int(np.searchsorted(schedule.chi_hi, chi_s + tol, side="right"))
+        partial = None
+        if full < schedule.n_planes and chi_s > schedule.chi_lo[full] + tol:
+            lo = schedule.chi_lo[full]
+            chi_p = 0.5 * (lo + chi_s)
+            frac = (chi_s - lo) / schedule.thickness[full]
+            partial = LensStep(full, chi_p, lens_strength(cosmo, float(cosmo.redshift_at(chi_p)), frac))
+        paths.append(SourcePath(chi_s, full, partial))
+    return paths
+
+
+def distortion_to_maps(A: np.ndarray, pixels: int) -> dict[str, np.ndarray]:
+    """kappa, gamma1, gamma2, omega from A given as rows (Axx, Axy, Ayx, Ayy)."""
+    axx, axy, ayx, ayy = A
+    maps = {
+        "kappa": 1.0 - 0.5 * (axx + ayy),
+        "gamma1": 0.5 * (ayy - axx),
+        "gamma2": -0.5 * (axy + ayx),
+        "omega": 0.5 * (axy - ayx),
+    }
+    return {k: v.reshape(pixels, pixels) for k, v in maps.items()}
+
+
+PlaneLoader = Callable[[int, int, int, Sequence[str]], Sequence[np.ndarray]]
+"""loader(snapshot, axis, slab, names) -> the named (grid, grid) derivative arrays."""
+
+
+def trace(
+    cosmo: Cosmology,
+    schedule: PlaneSchedule,
+    choice: PlaneChoice,
+    load: PlaneLoader,
+    *,
+    box_mpc_h: float,
+    field_deg: float,
+    pixels: int,
+    source_redshifts: Sequence[float],
+    method: str = "multi-plane",
+    log: Callable[[str], None] = lambda s: None,
+) -> dict[str, np.ndarray]:
+    """Convergence, shear and rotation maps, each (n_sources, pixels, pixels) float64."""
+    if method not in ("multi-plane", "born"):
+        raise RaytraceError(f"maps.method: unknown method {method!r} (multi-plane | born)")
+    paths = source_paths(cosmo, schedule, source_redshifts)
+    n_needed = max(p.full + (p.partial is not None) for p in paths)
+    tx, ty = ray_grid(field_deg, pixels)
+    strengths = [lens_strength(cosmo, float(schedule.z[k])) for k in range(schedule.n_planes)]
+    out = {k: np.zeros((len(paths), pixels, pixels)) for k in ("kappa", "gamma1", "gamma2", "omega")}
+    t0 = time.perf_counter()
+
+    def plane_fields(k: int, names: Sequence[str]):
+        return load(int(choice.snapshot[k]), int(choice.axis[k]), int(choice.slab[k]), names)
+
+    def geometry(k: int):
+        return (box_mpc_h, float(choice.shift[k, 0]), float(choice.shift[k, 1]),
+                float(choice.flip[k, 0]), float(choice.flip[k, 1]))
+
+    if method == "born":
+        tidal = np.empty((3, tx.size))
+
+        def accumulate(i: int, lens: LensStep):
+            w = lens.strength * lens.chi * (paths[i].chi_s - lens.chi) / paths[i].chi_s
+            out["kappa"][i] += (0.5 * w * (tidal[0] + tidal[1])).reshape(pixels, pixels)
+            out["gamma1"][i] += (0.5 * w * (tidal[0] - tidal[1])).reshape(pixels, pixels)
+            out["gamma2"][i] += (w * tidal[2]).reshape(pixels, pixels)
+
+        for k in range(n_needed):
+            fxx, fyy, fxy = plane_fields(k, ("d2phi_dxx", "d2phi_dyy", "d2phi_dxy"))
+            in_front = [i for i, p in enumerate(paths) if k < p.full]
+            if in_front:  # the unperturbed rays meet a full plane at the same place for every source
+                lens = LensStep(k, float(schedule.chi[k]), strengths[k])
+                born_tidal(tx, ty, lens.chi, fxx, fyy, fxy, *geometry(k), tidal)
+                for i in in_front:
+                    accumulate(i, lens)
+            for i, p in enumerate(paths):
+                if p.partial is not None and p.partial.plane == k:
+                    born_tidal(tx, ty, p.partial.chi, fxx, fyy, fxy, *geometry(k), tidal)
+                    accumulate(i, p.partial)
+            log(f"plane {k + 1}/{n_needed} (Born, {time.perf_counter() - t0:.1f} s)")
+        return out
+
+    state = np.zeros((N_STATE, tx.size))
+    state[2], state[3] = tx, ty
+    state[8], state[11] = 1.0, 1.0  # U = I, X = 0 at the observer
+    chi_cur = 0.0
+    names = ("dphi_dx", "dphi_dy", "d2phi_dxx", "d2phi_dyy", "d2phi_dxy")
+
+    def record(i: int, st: np.ndarray, chi_from: float):
+        d = paths[i].chi_s - chi_from
+        X = st[4:8] + d * st[8:12]
+        maps = distortion_to_maps(X / paths[i].chi_s, pixels)
+        for key, value in maps.items():
+            out[key][i] = value
+
+    for i, p in enumerate(paths):
+        if p.full == 0 and p.partial is None:
+            record(i, state, 0.0)
+    for k in range(n_needed):
+        fields = plane_fields(k, names)
+        for i, p in enumerate(paths):
+            if p.partial is not None and p.partial.plane == k:
+                branch = state.copy()
+                multiplane_step(branch, p.partial.chi - chi_cur, *fields, *geometry(k), p.partial.strength)
+                record(i, branch, p.partial.chi)
+        if any(k < p.full for p in paths):
+            multiplane_step(state, float(schedule.chi[k]) - chi_cur, *fields, *geometry(k), strengths[k])
+            chi_cur = float(schedule.chi[k])
+            for i, p in enumerate(paths):
+                if p.full == k + 1 and p.partial is None:
+                    record(i, state, chi_cur)
+        log(f"plane {k + 1}/{n_needed} (multi-plane, {time.perf_counter() - t0:.1f} s)")
+    return out
+
+
+class PlaneFiles:
+    """Reads plane derivatives from the per-snapshot HDF5 files, keeping files open."""
+
+    def __init__(self, files: Sequence[str | Path]):
+        import h5py
+
+        from .hdf5 import open_input
+
+        self.paths = [Path(f) for f in files]
+        self._files: dict[int, "h5py.File"] = {}
+        self._open = open_input
+        self.attrs = []
+        for p in self.paths:
+            with open_input(p) as f:
+                for key in ("box_mpc_h", "thickness_mpc_h", "grid", "n_slabs", "redshift"):
+                    if key not in f.attrs:
+                        raise RaytraceError(f"{p}: not a plane file (attribute {key} missing)")
+                self.attrs.append(dict(f.attrs))
+        first = self.attrs[0]
+        for p, a in zip(self.paths, self.attrs):
+            for key in ("box_mpc_h", "thickness_mpc_h", "grid"):
+                if a[key] != first[key]:
+                    raise RaytraceError(f"{p}: {key} = {a[key]} differs from {self.paths[0]} ({first[key]})")
+
+    @property
+    def box_mpc_h(self) -> float:
+        return float(self.attrs[0]["box_mpc_h"])
+
+    @property
+    def n_slabs(self) -> int:
+        return int(self.attrs[0]["n_slabs"])
+
+    def __call__(self, snapshot: int, axis: int, slab: int, names: Sequence[str]):
+        if snapshot not in self._files:
+            self._files[snapshot] = self._open(self.paths[snapshot])
+        f = self._files[snapshot]
+        return [np.ascontiguousarray(f[n][axis, slab]) for n in names]
+
+    def close(self) -> None:
+        for f in self._files.values():
+            f.close()
+        self._files.clear()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()

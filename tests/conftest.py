@@ -1,0 +1,70 @@
+"""Shared fixtures: a mid-size demo suite generated once per test session."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from raytrace.config import plane_schedule
+from raytrace.cosmology import Cosmology
+from raytrace.demo import generate_model
+from raytrace.hdf5 import atomic_h5
+from raytrace.planes import slice_snapshot, write_planes
+from raytrace.snapshots import read_header
+from raytrace.tracing import PlaneFiles, choose_planes, trace
+
+FIDUCIAL = dict(Omega_m=0.3, Omega_b=0.049, h=0.68, n_s=0.965, A_s=2.1e-9, m_nu_eV=0.1)
+
+
+@dataclass
+class Suite:
+    cosmo: Cosmology
+    box: float
+    n_particles: int
+    snapshot_z: list[float]
+    snapshots: list[list[Path]]
+    plane_files: list[Path]
+    thickness: float
+    grid: int
+
+    def schedule(self, z_max: float):
+        return plane_schedule(self.cosmo, self.thickness, z_max, self.snapshot_z)
+
+    def trace(self, realization: int, *, method: str, sources, field_deg: float, pixels: int, randomize=True,
+              seed=7, chi_min: float = 0.0):
+        """Trace one realisation; planes nearer than ``chi_min`` are left empty if asked."""
+        sched = self.schedule(max(sources))
+        with PlaneFiles(self.plane_files) as planes:
+            choice = choose_planes(sched, planes.n_slabs, self.box, seed, realization, randomize)
+            blank = sched.chi < chi_min
+            choice.snapshot[blank] = -1
+
+            def load(snapshot, axis, slab, names):
+                if snapshot < 0:
+                    return [np.zeros((self.grid, self.grid), dtype=np.float32) for _ in names]
+                return planes(snapshot, axis, slab, names)
+
+            return trace(self.cosmo, sched, choice, load, box_mpc_h=self.box, field_deg=field_deg,
+                         pixels=pixels, source_redshifts=sources, method=method)
+
+
+@pytest.fixture(scope="session")
+def suite(tmp_path_factory) -> Suite:
+    """A 256 Mpc/h box with 128^3 particles at five redshifts, sliced into 64 Mpc/h planes."""
+    root = tmp_path_factory.mktemp("suite")
+    cosmo = Cosmology(**FIDUCIAL)
+    zs = [0.0, 0.25, 0.5, 0.75, 1.0]
+    box, n, thickness, grid = 256.0, 128, 64.0, 512
+    snaps = generate_model(cosmo, box_mpc_h=box, particles_per_side=n, snapshot_redshifts=zs, seed=11,
+                           directory=root / "snapshots")
+    planes = []
+    for i, files in enumerate(snaps):
+        p = slice_snapshot(read_header(files), grid=grid, thickness_mpc_h=thickness)
+        out = root / f"planes_{i:03d}.h5"
+        with atomic_h5(out, stage="slice") as f:
+            write_planes(f, p)
+        planes.append(out)
+    return Suite(cosmo, box, n, zs, snaps, planes, thickness, grid)

@@ -1,0 +1,20 @@
+# Every configured statistic on one map file.
+
+
+def measure_settings():
+    return as_json({"statistics": config["statistics"]})
+
+
+rule measure:
+    input:
+        f"{OUT}/maps/{{model}}/r{{real}}.h5",
+    output:
+        f"{OUT}/statistics/{{model}}/r{{real}}.h5",
+    params:
+        settings=measure_settings(),
+    log:
+        "logs/measure/{model}_r{real}.log",
+    benchmark:
+        "logs/benchmarks/measure/{model}_r{real}.tsv"
+    shell:
+        "{RAYTRACE} measure --settings {params.settings:q} --maps {input:q} --output {output:q} 2> {log:q}"

@@ -1,0 +1,32 @@
+# Demo suite: LPT particle snapshots for every model (same phases everywhere).
+
+
+def simulate_settings(model):
+    suite = config["suite"]
+    keys = ("box_mpc_h", "particles_per_side", "files_per_snapshot", "lpt_order", "snapshot_redshifts")
+    settings = {k: suite[k] for k in keys}
+    settings["cosmology"] = rtconfig.model_parameters(config, model)
+    settings["seed"] = config["seed"]
+    return as_json(settings)
+
+
+rule simulate:
+    output:
+        [
+            f"{OUT}/snapshots/{{model}}/snap_{i}.{j}.hdf5"
+            for i in SNAP_INDEX
+            for j in range(config["suite"]["files_per_snapshot"])
+        ],
+    params:
+        settings=lambda w: simulate_settings(w.model),
+        outdir=lambda w: f"{OUT}/snapshots/{w.model}",
+    log:
+        "logs/simulate/{model}.log",
+    benchmark:
+        "logs/benchmarks/simulate/{model}.tsv"
+    threads: 2
+    resources:
+        mem_mb=lambda w: 200 + 40 * config["suite"]["particles_per_side"] ** 3 * 8 // 2**20 * 3,
+    shell:
+        "RAYTRACE_THREADS={threads} {RAYTRACE} simulate --model {wildcards.model} "
+        "--settings {params.settings:q} --outdir {params.outdir:q} 2> {log:q}"

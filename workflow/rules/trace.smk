@@ -1,0 +1,29 @@
+# One realisation of one model: random plane choices, multi-plane or Born tracing.
+
+
+def trace_settings(model):
+    return as_json(
+        {
+            "cosmology": rtconfig.model_parameters(config, model),
+            "maps": config["maps"] | {"realizations": None},  # the count does not change a map
+            "seed": config["seed"],
+        }
+    )
+
+
+rule trace:
+    input:
+        lambda w: plane_files(w.model),
+    output:
+        f"{OUT}/maps/{{model}}/r{{real}}.h5",
+    params:
+        settings=lambda w: trace_settings(w.model),
+    log:
+        "logs/trace/{model}_r{real}.log",
+    benchmark:
+        "logs/benchmarks/trace/{model}_r{real}.tsv"
+    resources:
+        mem_mb=lambda w: 300 + (config["maps"]["pixels"] ** 2 * 8 * (12 + 8) + 5 * config["planes"]["grid"] ** 2 * 8) // 2**20,
+    shell:
+        "{RAYTRACE} trace --model {wildcards.model} --realization {wildcards.real} "
+        "--settings {params.settings:q} --planes {input:q} --output {output:q} 2> {log:q}"
