@@ -91,7 +91,7 @@ def cmd_slice(args, log: Log) -> None:
 def cmd_trace(args, log: Log) -> None:
     import numpy as np
 
-    from .config import plane_schedule
+    from .config import check_sources_within_planes, plane_schedule
     from .cosmology import Cosmology
     from .hdf5 import atomic_h5, write_dataset
     from .tracing import PlaneFiles, choose_planes, trace
@@ -103,6 +103,7 @@ def cmd_trace(args, log: Log) -> None:
         zs = [float(a["redshift"]) for a in planes.attrs]
         if zs != sorted(zs):
             raise RaytraceError(f"{args.planes[0]}: plane files must be given in increasing snapshot redshift")
+        check_sources_within_planes(m["source_redshifts"], zs)
         thickness = float(planes.attrs[0]["thickness_mpc_h"])
         z_max = max(m["source_redshifts"])
         schedule = plane_schedule(cosmo, thickness, z_max, zs)

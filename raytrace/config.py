@@ -165,6 +165,17 @@ def max_plane_redshift(cfg: Mapping) -> float:
     return max(snapshot_redshifts(cfg))
 
 
+def check_sources_within_planes(source_redshifts, snapshot_z) -> None:
+    """Planes are cut from snapshots: a source beyond the highest snapshot has no planes."""
+    z_last = max(snapshot_z)
+    for z in source_redshifts:
+        if z > z_last + 1e-9:
+            raise RaytraceError(
+                f"maps.source_redshifts: source at z = {z} lies beyond the last lens plane "
+                f"(planes end at the highest snapshot redshift, z = {z_last:g})"
+            )
+
+
 def _check_semantics(cfg: dict) -> None:
     suite = cfg["suite"]
     for name, offsets in suite["models"].items():
@@ -183,13 +194,7 @@ def _check_semantics(cfg: dict) -> None:
     srcs = cfg["maps"]["source_redshifts"]
     if sorted(srcs) != list(srcs) or len(set(srcs)) != len(srcs):
         raise RaytraceError("maps.source_redshifts: must be distinct and increasing")
-    z_last = max_plane_redshift(cfg)
-    for z in srcs:
-        if z > z_last + 1e-9:
-            raise RaytraceError(
-                f"maps.source_redshifts: source at z = {z} lies beyond the last lens plane "
-                f"(planes end at the highest snapshot redshift, z = {z_last})"
-            )
+    check_sources_within_planes(srcs, snapshot_redshifts(cfg))
     for name in suite["models"]:
         model_cosmology(cfg, name)  # rejects impossible parameter combinations
     ps = cfg.get("statistics", {}).get("power_spectrum")
