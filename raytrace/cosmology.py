@@ -109,9 +109,22 @@ class Cosmology:
 
     @cached_property
     def _distance_table(self) -> tuple[np.ndarray, np.ndarray]:
-        z = np.concatenate([np.linspace(0.0, 0.1, 201), np.geomspace(0.1005, 20.0, 3000)])
-        chi = self.astropy.comoving_distance(z).value * self.h  # Mpc -> Mpc/h
-        return z, chi
+        r""":math:`\chi(z) = (c/H_0)\int_0^z dz'/E(z')` on a fine grid, from astropy's :math:`1/E(z)`.
+
+        astropy's vectorised ``inv_efunc`` (massive neutrinos included) integrated with
+        the cumulative Simpson rule: relative error below 1e-8 on this grid, and far
+        cheaper than one quadrature per redshift.
+        """
+        from scipy.integrate import cumulative_simpson
+
+        z = np.concatenate([np.linspace(0.0, 3.0, 6001), np.linspace(3.0, 20.0, 3401)[1:]])
+        inv_e = self.astropy.inv_efunc(z)
+        chi = np.empty_like(z)
+        lo = z <= 3.0
+        chi[lo] = cumulative_simpson(inv_e[lo], x=z[lo], initial=0.0)
+        hi_z = np.concatenate([[3.0], z[~lo]])
+        chi[~lo] = chi[lo][-1] + cumulative_simpson(self.astropy.inv_efunc(hi_z), x=hi_z, initial=0.0)[1:]
+        return z, chi * C_KM_S / 100.0  # in Mpc/h
 
     def comoving_distance(self, z: np.ndarray | float) -> np.ndarray:
         """Line-of-sight comoving distance in Mpc/h (flat: equal to the transverse one)."""

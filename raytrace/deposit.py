@@ -18,13 +18,14 @@ from numba import njit
 PLANE_AXES = ((1, 2), (2, 0), (0, 1))
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, inline="always")
 def _wrap(i: int, n: int) -> int:
     i = i % n
     return i + n if i < 0 else i
 
 
-@njit(cache=True, nogil=True)
+# fastmath: positions are checked finite before deposition; reassociation only
+@njit(cache=True, nogil=True, fastmath=True)
 def deposit_planes_cic(pos, mass, box, grid, n_slabs, out):
     """Deposit particles onto the slabs of all three projections at once (CIC transverse).
 
@@ -52,22 +53,31 @@ def deposit_planes_cic(pos, mass, box, grid, n_slabs, out):
                 s = 0
             ux = pos[p, ax] * inv_cell - 0.5
             uy = pos[p, ay] * inv_cell - 0.5
-            ix = int(np.floor(ux))
-            iy = int(np.floor(uy))
-            fx = ux - ix
-            fy = uy - iy
-            ix0 = _wrap(ix, grid)
-            iy0 = _wrap(iy, grid)
+            # floor for u >= -1 (positions lie in [0, box)); wrap -1 and n at the edges
+            ix0 = int(ux + 1.0) - 1
+            iy0 = int(uy + 1.0) - 1
+            fx = ux - ix0
+            fy = uy - iy0
+            if ix0 < 0:
+                ix0 += grid
+            if iy0 < 0:
+                iy0 += grid
             ix1 = ix0 + 1
-            if ix1 == grid:
-                ix1 = 0
+            if ix1 >= grid:
+                ix1 -= grid
             iy1 = iy0 + 1
-            if iy1 == grid:
-                iy1 = 0
-            out[a, s, iy0, ix0] += m * (1.0 - fx) * (1.0 - fy)
-            out[a, s, iy0, ix1] += m * fx * (1.0 - fy)
-            out[a, s, iy1, ix0] += m * (1.0 - fx) * fy
-            out[a, s, iy1, ix1] += m * fx * fy
+            if iy1 >= grid:
+                iy1 -= grid
+            if ix0 >= grid:
+                ix0 -= grid
+            if iy0 >= grid:
+                iy0 -= grid
+            my1 = m * fy
+            my0 = m - my1
+            out[a, s, iy0, ix0] += my0 - my0 * fx
+            out[a, s, iy0, ix1] += my0 * fx
+            out[a, s, iy1, ix0] += my1 - my1 * fx
+            out[a, s, iy1, ix1] += my1 * fx
 
 
 @njit(cache=True, nogil=True)
@@ -84,25 +94,37 @@ def deposit_planes_ngp(pos, mass, box, grid, n_slabs, out):
             out[a, s, iy, ix] += m
 
 
-@njit(cache=True, nogil=True)
+@njit(cache=True, nogil=True, fastmath=True)
 def cic_2d(x, y, w, box, grid, out):
     """CIC of points (x, y) with weights w onto a periodic (grid, grid) array [iy, ix]."""
     inv_cell = grid / box
     for p in range(x.shape[0]):
         ux = x[p] * inv_cell - 0.5
         uy = y[p] * inv_cell - 0.5
-        ix = int(np.floor(ux))
-        iy = int(np.floor(uy))
-        fx = ux - ix
-        fy = uy - iy
-        ix0 = _wrap(ix, grid)
-        iy0 = _wrap(iy, grid)
-        ix1 = ix0 + 1 if ix0 + 1 < grid else 0
-        iy1 = iy0 + 1 if iy0 + 1 < grid else 0
-        out[iy0, ix0] += w[p] * (1.0 - fx) * (1.0 - fy)
-        out[iy0, ix1] += w[p] * fx * (1.0 - fy)
-        out[iy1, ix0] += w[p] * (1.0 - fx) * fy
-        out[iy1, ix1] += w[p] * fx * fy
+        ix0 = int(ux + 1.0) - 1  # as in deposit_planes_cic
+        iy0 = int(uy + 1.0) - 1
+        fx = ux - ix0
+        fy = uy - iy0
+        if ix0 < 0:
+            ix0 += grid
+        if iy0 < 0:
+            iy0 += grid
+        ix1 = ix0 + 1
+        if ix1 >= grid:
+            ix1 -= grid
+        iy1 = iy0 + 1
+        if iy1 >= grid:
+            iy1 -= grid
+        if ix0 >= grid:
+            ix0 -= grid
+        if iy0 >= grid:
+            iy0 -= grid
+        wy1 = w[p] * fy
+        wy0 = w[p] - wy1
+        out[iy0, ix0] += wy0 - wy0 * fx
+        out[iy0, ix1] += wy0 * fx
+        out[iy1, ix0] += wy1 - wy1 * fx
+        out[iy1, ix1] += wy1 * fx
 
 
 @njit(cache=True, nogil=True)

@@ -30,9 +30,19 @@ limit :math:`\gamma_1 = (\psi_{,xx}-\psi_{,yy})/2`, :math:`\gamma_2 = \psi_{,xy}
 along the diagonal x = y. Map arrays are [iy, ix]; pixel [i, j] is the ray with
 :math:`\theta_y = (i+\tfrac12)\Delta - F/2`, :math:`\theta_x = (j+\tfrac12)\Delta - F/2`.
 
-Sources need not sit on slab boundaries: for a source inside a slab, the part of the
-slab in front of it acts as a plane at its own centre with its share of the slab's mass,
-in both methods.
+Slabs and sources. In the multi-plane recursion each slab is a thin lens at its centre;
+for a source inside a slab, the part of the slab in front of it acts as a thin lens at its
+own centre with its share of the slab's mass. In the Born approximation each slab's
+contrast is evaluated on the unperturbed rays at the slab centre, and its weight is the
+lensing kernel integrated exactly over the part of the slab in front of the source,
+:math:`\tfrac32\Omega_m (H_0/c)^2\int (1+z)\chi(\chi_s-\chi)/\chi_s\,d\chi` (equal to the
+thin-lens value to second order in the slab thickness).
+
+Source distributions. A tomographic bin with redshift distribution :math:`n(z)` is, in the
+Born approximation, the map whose slab weights are :math:`\int dz\, n(z) W_k(z)` (exact in
+the kernel, by quadrature on the n(z) grid). In the multi-plane case the bin is the
+n(z)-weighted sum of the maps of sources at the slab boundaries, each galaxy's weight
+shared linearly between the two boundaries that bracket it.
 
 Interpolation: the planes' potential derivatives are interpolated bilinearly (cell
 centres at :math:`(i+\tfrac12)` cells) at the ray positions.
@@ -233,6 +243,71 @@ def source_paths(cosmo: Cosmology, schedule: PlaneSchedule, source_redshifts: Se
     return paths
 
 
+class SlabKernel:
+    r"""Exact Born weights of slabs: :math:`\tfrac32\Omega_m (H_0/c)^2\int_{\chi_{lo}}^{\min(\chi_{hi},\chi_s)}(1+z)\chi(\chi_s-\chi)/\chi_s\,d\chi`.
+
+    Cumulative integrals of :math:`(1+z)\chi` and :math:`(1+z)\chi^2` on a 0.25 Mpc/h
+    grid make the weight of any slab for any source an interpolation.
+    """
+
+    def __init__(self, cosmo: Cosmology, chi_max: float):
+        from scipy.integrate import cumulative_trapezoid
+
+        n = int(chi_max / 0.25) + 2
+        self.chi = np.linspace(0.0, chi_max * 1.0001, n)
+        one_z = 1.0 + cosmo.redshift_at(self.chi)
+        self.a = cumulative_trapezoid(one_z * self.chi, self.chi, initial=0.0)
+        self.b = cumulative_trapezoid(one_z * self.chi**2, self.chi, initial=0.0)
+        self.factor = 1.5 * cosmo.Omega_m * H0_OVER_C**2
+
+    def weight(self, lo: float, hi: float, chi_s: np.ndarray) -> np.ndarray:
+        """Weight of the slab [lo, hi] for sources at ``chi_s`` (0 for sources in front of it)."""
+        chi_s = np.atleast_1d(np.asarray(chi_s, dtype=float))
+        u = np.clip(chi_s, lo, hi)
+        da = np.interp(u, self.chi, self.a) - np.interp(lo, self.chi, self.a)
+        db = np.interp(u, self.chi, self.b) - np.interp(lo, self.chi, self.b)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            w = self.factor * (da - db / chi_s)
+        return np.where(chi_s > lo, w, 0.0)
+
+
+@dataclass(frozen=True)
+class SourceBin:
+    """A redshift distribution on a grid; ``weights`` are its quadrature weights (sum 1)."""
+
+    z: np.ndarray
+    weights: np.ndarray
+
+    @classmethod
+    def from_nz(cls, z: np.ndarray, nz: np.ndarray) -> "SourceBin":
+        z = np.asarray(z, dtype=float)
+        nz = np.asarray(nz, dtype=float)
+        dz = np.gradient(z)  # trapezoid-like weights on a uniform or smooth grid
+        w = nz * dz
+        w[0] *= 0.5 if len(z) > 1 and np.isclose(dz[0], z[1] - z[0]) else 1.0
+        w[-1] *= 0.5 if len(z) > 1 and np.isclose(dz[-1], z[-1] - z[-2]) else 1.0
+        total = w.sum()
+        if not total > 0:
+            raise RaytraceError("survey.sources: a tomographic bin holds no galaxies")
+        return cls(z, w / total)
+
+
+def boundary_weights(chi_boundaries: np.ndarray, chi_gal: np.ndarray, weights: np.ndarray) -> np.ndarray:
+    """Share each galaxy's weight linearly between the two slab boundaries around it.
+
+    ``chi_boundaries`` are the far edges of the slabs; the observer (chi = 0, no lensing)
+    is the boundary in front of the first slab and takes the share of galaxies in front
+    of it. Returns (n_boundaries,) weights; what falls on the observer is dropped.
+    """
+    edges = np.concatenate([[0.0], chi_boundaries])
+    j = np.clip(np.searchsorted(edges, chi_gal, side="right"), 1, len(edges) - 1)
+    frac = (chi_gal - edges[j - 1]) / (edges[j] - edges[j - 1])
+    out = np.zeros(len(edges))
+    np.add.at(out, j, weights * frac)
+    np.add.at(out, j - 1, weights * (1.0 - frac))
+    return out[1:]
+
+
 def distortion_to_maps(A: np.ndarray, pixels: int) -> dict[str, np.ndarray]:
     """kappa, gamma1, gamma2, omega from A given as rows (Axx, Axy, Ayx, Ayy)."""
     axx, axy, ayx, ayy = A
@@ -260,16 +335,40 @@ def trace(
     pixels: int,
     source_redshifts: Sequence[float],
     method: str = "multi-plane",
+    source_bins: Sequence[SourceBin] = (),
     log: Callable[[str], None] = lambda s: None,
 ) -> dict[str, np.ndarray]:
-    """Convergence, shear and rotation maps, each (n_sources, pixels, pixels) float64."""
+    """Convergence, shear and rotation maps, each (n_sources + n_bins, pixels, pixels) float64.
+
+    The first ``len(source_redshifts)`` maps are the single source redshifts, the others
+    the ``source_bins`` in order.
+    """
     if method not in ("multi-plane", "born"):
         raise RaytraceError(f"maps.method: unknown method {method!r} (multi-plane | born)")
     paths = source_paths(cosmo, schedule, source_redshifts)
-    n_needed = max(p.full + (p.partial is not None) for p in paths)
+    bins = list(source_bins)
+    chi_last = float(schedule.chi_hi[-1])
+    bin_chi = []
+    for b, sb in enumerate(bins):
+        chi_gal = cosmo.comoving_distance(sb.z)
+        if np.any((chi_gal > chi_last * (1 + 1e-9)) & (sb.weights > 0)):
+            raise RaytraceError(
+                f"survey.sources: the n(z) of bin {b} extends beyond the last lens plane "
+                f"(z = {float(cosmo.redshift_at(chi_last)):.3f}); lower survey.sources.z_max"
+            )
+        if not np.any((chi_gal > schedule.chi_hi[0]) & (sb.weights > 0)):
+            raise RaytraceError(f"survey.sources: the n(z) of bin {b} has no support beyond the first lens plane")
+        bin_chi.append(chi_gal)
+    n_src = len(paths)
+    n_needed = max([p.full + (p.partial is not None) for p in paths] + [0])
+    for chi_gal, sb in zip(bin_chi, bins):
+        reach = chi_gal[sb.weights > 0].max()
+        n_needed = max(n_needed, int(np.searchsorted(schedule.chi_lo, reach, side="left")))
+    n_needed = min(max(n_needed, 1), schedule.n_planes)
     tx, ty = ray_grid(field_deg, pixels)
     strengths = [lens_strength(cosmo, float(schedule.z[k])) for k in range(schedule.n_planes)]
-    out = {k: np.zeros((len(paths), pixels, pixels)) for k in ("kappa", "gamma1", "gamma2", "omega")}
+    n_maps = n_src + len(bins)
+    out = {k: np.zeros((n_maps, pixels, pixels)) for k in ("kappa", "gamma1", "gamma2", "omega")}
     t0 = time.perf_counter()
 
     def plane_fields(k: int, names: Sequence[str]):
@@ -281,25 +380,25 @@ def trace(
 
     if method == "born":
         tidal = np.empty((3, tx.size))
-
-        def accumulate(i: int, lens: LensStep):
-            w = lens.strength * lens.chi * (paths[i].chi_s - lens.chi) / paths[i].chi_s
-            out["kappa"][i] += (0.5 * w * (tidal[0] + tidal[1])).reshape(pixels, pixels)
-            out["gamma1"][i] += (0.5 * w * (tidal[0] - tidal[1])).reshape(pixels, pixels)
-            out["gamma2"][i] += (w * tidal[2]).reshape(pixels, pixels)
-
+        kernel = SlabKernel(cosmo, chi_last)
+        chi_src = np.array([p.chi_s for p in paths])
         for k in range(n_needed):
+            lo, hi = float(schedule.chi_lo[k]), float(schedule.chi_hi[k])
+            # Born weight per unit slab contrast -> per unit lap(phi) = contrast * thickness,
+            # in the form w (Txx + Tyy) / 2 = kappa
+            to_tidal = 2.0 / (hi - lo)
+            w = list(kernel.weight(lo, hi, chi_src) * to_tidal) if n_src else []
+            w += [float(np.sum(sb.weights * kernel.weight(lo, hi, c))) * to_tidal for sb, c in zip(bins, bin_chi)]
+            if not any(w):
+                continue
             fxx, fyy, fxy = plane_fields(k, ("d2phi_dxx", "d2phi_dyy", "d2phi_dxy"))
-            in_front = [i for i, p in enumerate(paths) if k < p.full]
-            if in_front:  # the unperturbed rays meet a full plane at the same place for every source
-                lens = LensStep(k, float(schedule.chi[k]), strengths[k])
-                born_tidal(tx, ty, lens.chi, fxx, fyy, fxy, *geometry(k), tidal)
-                for i in in_front:
-                    accumulate(i, lens)
-            for i, p in enumerate(paths):
-                if p.partial is not None and p.partial.plane == k:
-                    born_tidal(tx, ty, p.partial.chi, fxx, fyy, fxy, *geometry(k), tidal)
-                    accumulate(i, p.partial)
+            born_tidal(tx, ty, float(schedule.chi[k]), fxx, fyy, fxy, *geometry(k), tidal)
+            for i, wi in enumerate(w):
+                if wi == 0.0:
+                    continue
+                out["kappa"][i] += (0.5 * wi * (tidal[0] + tidal[1])).reshape(pixels, pixels)
+                out["gamma1"][i] += (0.5 * wi * (tidal[0] - tidal[1])).reshape(pixels, pixels)
+                out["gamma2"][i] += (wi * tidal[2]).reshape(pixels, pixels)
             log(f"plane {k + 1}/{n_needed} (Born, {time.perf_counter() - t0:.1f} s)")
         return out
 
@@ -309,12 +408,16 @@ def trace(
     chi_cur = 0.0
     names = ("dphi_dx", "dphi_dy", "d2phi_dxx", "d2phi_dyy", "d2phi_dxy")
 
+    def maps_at(st: np.ndarray, chi_from: float, chi_s: float) -> dict[str, np.ndarray]:
+        X = st[4:8] + (chi_s - chi_from) * st[8:12]
+        return distortion_to_maps(X / chi_s, pixels)
+
     def record(i: int, st: np.ndarray, chi_from: float):
-        d = paths[i].chi_s - chi_from
-        X = st[4:8] + d * st[8:12]
-        maps = distortion_to_maps(X / paths[i].chi_s, pixels)
-        for key, value in maps.items():
+        for key, value in maps_at(st, chi_from, paths[i].chi_s).items():
             out[key][i] = value
+
+    # multi-plane bins: n(z)-weighted sources at the slab boundaries
+    boundary_w = np.array([boundary_weights(schedule.chi_hi, c, sb.weights) for sb, c in zip(bins, bin_chi)])
 
     for i, p in enumerate(paths):
         if p.full == 0 and p.partial is None:
@@ -326,12 +429,17 @@ def trace(
                 branch = state.copy()
                 multiplane_step(branch, p.partial.chi - chi_cur, *fields, *geometry(k), p.partial.strength)
                 record(i, branch, p.partial.chi)
-        if any(k < p.full for p in paths):
+        if any(k < p.full for p in paths) or (bins and np.any(boundary_w[:, k:] > 0)):
             multiplane_step(state, float(schedule.chi[k]) - chi_cur, *fields, *geometry(k), strengths[k])
             chi_cur = float(schedule.chi[k])
             for i, p in enumerate(paths):
                 if p.full == k + 1 and p.partial is None:
                     record(i, state, chi_cur)
+            if bins and np.any(boundary_w[:, k] > 0):
+                at_edge = maps_at(state, chi_cur, float(schedule.chi_hi[k]))
+                for b in range(len(bins)):
+                    for key, value in at_edge.items():
+                        out[key][n_src + b] += boundary_w[b, k] * value
         log(f"plane {k + 1}/{n_needed} (multi-plane, {time.perf_counter() - t0:.1f} s)")
     return out
 

@@ -80,7 +80,8 @@ def test_point_mass_shear_and_convergence_profile():
     _, _, d = point_mass_plane(grid, box, mass)
     chi = np.array([600.0, 1000.0])
     chi_s = 1300.0
-    sched = PlaneSchedule(np.array([500.0, 700.0]), np.array([700.0, 1400.0]), chi, cosmo.redshift_at(chi),
+    # a thin lens slab at 600 Mpc/h (its Born weight is then the thin-lens one) and an empty one
+    sched = PlaneSchedule(np.array([599.0, 601.0]), np.array([601.0, 1400.0]), chi, cosmo.redshift_at(chi),
                           np.array([0, 1]))
     choice = PlaneChoice(np.array([0, 1]), np.zeros(2, int), np.zeros(2, int), np.zeros((2, 2)), np.ones((2, 2)))
     empty = {k: np.zeros_like(v) for k, v in d.items()}

@@ -12,7 +12,7 @@ from raytrace.planes import potential_derivatives
 from raytrace.snapshots import iter_chunks, read_header
 from raytrace.spectra import power_spectrum_3d
 from raytrace.statistics.power_spectrum import binned_cross_spectrum, expected_binned_spectrum
-from raytrace.tracing import H0_OVER_C, PlaneChoice, lens_strength, trace
+from raytrace.tracing import H0_OVER_C, PlaneChoice, SlabKernel, trace
 
 from conftest import FIDUCIAL
 
@@ -173,20 +173,33 @@ def test_kaiser_squires_inversion_of_born_shear():
 
 
 def test_born_weights_equal_lensing_kernel():
-    # The Born convergence of one thin plane is (3/2) Om (H0/c)^2 (1+z) chi (chi_s - chi)/chi_s
-    # times the projected contrast (e.g. Bartelmann & Schneider 2001, Phys. Rep. 340, 291, eq. 6.14).
+    # The Born convergence of a slab of mean contrast delta is
+    # (3/2) Om (H0/c)^2 delta * int (1+z) chi (chi_s - chi) / chi_s dchi over the slab
+    # (e.g. Bartelmann & Schneider 2001, Phys. Rep. 340, 291, eq. 6.14), here checked with an
+    # independent quadrature (scipy.integrate.quad).
+    from scipy.integrate import quad
+
     cosmo, sched, choice, load, box, field_deg = periodic_born_setup(n_planes=1)
-    chi_s = 2 * float(sched.chi[0])
-    zs = float(cosmo.redshift_at(chi_s))
-    sched = PlaneSchedule(sched.chi_lo, np.array([chi_s]), sched.chi, sched.z, sched.snapshot)
-    maps = trace(cosmo, sched, choice, load, box_mpc_h=box, field_deg=field_deg, pixels=128,
-                 source_redshifts=[zs], method="born")
+    lo, hi = 300.0, 500.0
+    thickness = hi - lo
     f = load(0, 0, 0, ("d2phi_dxx", "d2phi_dyy"))
-    lap = f[0] + f[1]  # = projected contrast (delta * thickness) on the plane grid
-    chi = float(sched.chi[0])
-    # the source sits at the far edge of this (thick) slab: the whole slab is in front
-    expected = 0.5 * lens_strength(cosmo, float(sched.z[0])) * chi * (chi_s - chi) / chi_s * lap
-    expected_factor = 1.5 * cosmo.Omega_m * H0_OVER_C**2 * (1 + float(sched.z[0])) * chi * (chi_s - chi) / chi_s
-    assert np.allclose(expected, expected_factor * lap)
-    # rays at the pixel centres of a field spanning one period land on the plane's cell centres
-    assert np.allclose(maps["kappa"][0], expected, rtol=1e-4, atol=1e-9 * np.abs(expected).max())
+    lap = f[0] + f[1]  # the plane stores lap(phi) = contrast * thickness
+    delta = lap / thickness
+    for chi_s in (hi, 420.0):  # a source behind the slab, and one inside it
+        sched1 = PlaneSchedule(np.array([lo]), np.array([hi]), np.array([0.5 * (lo + hi)]),
+                               cosmo.redshift_at(np.array([0.5 * (lo + hi)])), np.zeros(1, int))
+        zs = float(cosmo.redshift_at(chi_s))
+        # a field of L / chi_c degrees puts the rays on the plane's cell centres
+        fd = np.rad2deg(box / (0.5 * (lo + hi)))
+        maps = trace(cosmo, sched1, choice, load, box_mpc_h=box, field_deg=fd, pixels=128,
+                     source_redshifts=[zs], method="born")
+        chi_src = float(cosmo.comoving_distance(zs))
+        integral = quad(lambda c: (1 + float(cosmo.redshift_at(c))) * c * (chi_src - c) / chi_src, lo,
+                        min(hi, chi_src))[0]
+        expected = 1.5 * cosmo.Omega_m * H0_OVER_C**2 * integral * delta
+        assert np.allclose(maps["kappa"][0], expected, rtol=1e-4, atol=1e-6 * np.abs(expected).max())
+    # thin slabs: the weight tends to the thin-lens value (1+z) chi (chi_s - chi) / chi_s * thickness
+    thin = SlabKernel(cosmo, 2000.0).weight(999.5, 1000.5, np.array([1800.0]))[0]
+    z = float(cosmo.redshift_at(1000.0))
+    thin_lens = 1.5 * cosmo.Omega_m * H0_OVER_C**2 * (1 + z) * 1000.0 * 800.0 / 1800.0 * 1.0
+    assert thin == pytest.approx(thin_lens, rel=1e-5)

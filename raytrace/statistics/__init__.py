@@ -91,7 +91,7 @@ class Statistic:
 
 
 _REGISTRY: dict[str, type[Statistic]] = {}
-_MODULES = ("power_spectrum",)
+_MODULES = ("power_spectrum", "pdf", "moments", "peaks", "minima", "minkowski", "bispectrum")
 
 
 def register(cls: type[Statistic]) -> type[Statistic]:
