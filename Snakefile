@@ -34,6 +34,7 @@ include: "workflow/rules/common.smk"
 include: "workflow/rules/simulate.smk"
 include: "workflow/rules/slice.smk"
 include: "workflow/rules/trace.smk"
+include: "workflow/rules/observe.smk"
 include: "workflow/rules/measure.smk"
 
 

@@ -99,23 +99,36 @@ def cmd_trace(args, log: Log) -> None:
     s = _settings(args.settings)
     cosmo = Cosmology.from_mapping(s["cosmology"], where=f"suite.models.{args.model}")
     m = s["maps"]
+    bins, source_bins = _source_bins(s.get("sources"))
     with PlaneFiles(args.planes) as planes:
         zs = [float(a["redshift"]) for a in planes.attrs]
         if zs != sorted(zs):
             raise RaytraceError(f"{args.planes[0]}: plane files must be given in increasing snapshot redshift")
         check_sources_within_planes(m["source_redshifts"], zs)
         thickness = float(planes.attrs[0]["thickness_mpc_h"])
-        z_max = max(m["source_redshifts"])
+        z_max = max(list(m["source_redshifts"]) + ([float(bins.z[-1])] if bins is not None else []))
+        if z_max > max(zs) + 1e-9:
+            raise RaytraceError(f"survey.sources.z_max: {z_max} lies beyond the last lens plane (z = {max(zs):g})")
         schedule = plane_schedule(cosmo, thickness, z_max, zs)
         _warn_geometry(cosmo, schedule, m["field_deg"], planes.box_mpc_h, log)
         choice = choose_planes(schedule, planes.n_slabs, planes.box_mpc_h, s["seed"], args.realization, m["randomize_planes"])
         maps = trace(
             cosmo, schedule, choice, planes, box_mpc_h=planes.box_mpc_h, field_deg=m["field_deg"],
-            pixels=m["pixels"], source_redshifts=m["source_redshifts"], method=m["method"], log=log,
+            pixels=m["pixels"], source_redshifts=m["source_redshifts"], method=m["method"],
+            source_bins=source_bins, log=log,
         )
+        n_src = len(m["source_redshifts"])
         with atomic_h5(args.output, stage="trace", settings=s, inputs=args.planes, seed=s["seed"]) as f:
             for key, value in maps.items():
-                write_dataset(f, key, value.astype(np.float32), "1", axes="[source, iy, ix]")
+                write_dataset(f, key, value[:n_src].astype(np.float32), "1", axes="[source, iy, ix]")
+            if bins is not None:
+                g = f.create_group("bins")
+                for key, value in maps.items():
+                    write_dataset(g, key, value[n_src:].astype(np.float32), "1", axes="[bin, iy, ix]")
+                write_dataset(g, "z", bins.z, "1")
+                write_dataset(g, "nz", bins.nz, "1", axes="[bin, z]", description="true-redshift n(z) of each bin")
+                write_dataset(g, "fraction", bins.fractions, "1", description="share of the galaxy sample")
+                write_dataset(g, "edges", np.asarray(bins.edges, dtype=float), "1", description="photometric bin edges")
             f.attrs["source_redshifts"] = np.asarray(m["source_redshifts"], dtype=float)
             f.attrs["field_deg"] = float(m["field_deg"])
             f.attrs["pixels"] = int(m["pixels"])
@@ -133,6 +146,17 @@ def cmd_trace(args, log: Log) -> None:
     log(f"{len(m['source_redshifts'])} source redshifts x {m['pixels']}^2 pixels ({m['method']}) written to {args.output}")
 
 
+def _source_bins(sources):
+    """Tomographic bins of ``survey.sources`` (None when not configured)."""
+    if not sources:
+        return None, []
+    from . import survey
+    from .tracing import SourceBin
+
+    bins = survey.source_bins(sources, base_dir=Path.cwd())
+    return bins, [SourceBin.from_nz(bins.z, bins.nz[i]) for i in range(bins.nz.shape[0])]
+
+
 def _warn_geometry(cosmo, schedule, field_deg: float, box: float, log: Callable[[str], None]) -> None:
     import numpy as np
 
@@ -142,8 +166,16 @@ def _warn_geometry(cosmo, schedule, field_deg: float, box: float, log: Callable[
             f"({box:g} Mpc/h): structures repeat across the map")
 
 
+def cmd_observe(args, log: Log) -> None:
+    from .observe import observe
+
+    s = _settings(args.settings)
+    catalogs = (args.catalog, args.catalog_fits) if args.catalog else None
+    observe(args.maps, args.output, s["survey"], seed=s["seed"], realization=args.realization, base_dir=Path.cwd(),
+            catalog_paths=catalogs, fits_path=args.fits, log=log)
+
+
 def cmd_measure(args, log: Log) -> None:
-    import h5py
     import numpy as np
 
     from . import statistics
@@ -151,30 +183,49 @@ def cmd_measure(args, log: Log) -> None:
 
     s = _settings(args.settings)
     with open_input(args.maps) as f:
-        if "kappa" not in f:
-            raise RaytraceError(f"{args.maps}: no kappa dataset")
+        for key in ("kappa", "kappa_smoothed", "mask", "noise_sigma"):
+            if key not in f:
+                raise RaytraceError(f"{args.maps}: no {key} dataset (not a file of the observe stage)")
         kappa = f["kappa"][...].astype(np.float64)
-        field_deg = float(f.attrs["field_deg"])
-        zs = list(f.attrs["source_redshifts"])
-    labels = tuple(f"z{z:.2f}" for z in zs)
-    pixels = kappa.shape[-1]
-    mapset = statistics.MapSet(
-        maps=kappa, mask=np.ones(kappa.shape[1:], dtype=bool), pixel_arcmin=field_deg * 60 / pixels, bin_labels=labels
-    )
+        smoothed = f["kappa_smoothed"][...].astype(np.float64)
+        mask = f["mask"][...].astype(bool)
+        sigma = f["noise_sigma"][...]
+        sigma_s = f["noise_sigma_smoothed"][...]
+        scales = [float(x) for x in f.attrs["smoothing_arcmin"]]
+        labels = tuple(json.loads(f.attrs["map_labels"]))
+        pixel_arcmin = float(f.attrs["pixel_arcmin"])
+
+    def mapset(maps, scale, noise):
+        return statistics.MapSet(maps=maps, mask=mask, pixel_arcmin=pixel_arcmin, smoothing_arcmin=scale,
+                                 noise_sigma=noise if np.any(noise > 0) else None, bin_labels=labels)
+
+    unsmoothed = mapset(kappa, 0.0, sigma)
+    # statistics of smoothed maps run at every scale (on the unsmoothed maps when none is set)
+    smoothed_sets = [mapset(smoothed[i], sc, sigma_s[i]) for i, sc in enumerate(scales)] or [unsmoothed]
     with atomic_h5(args.output, stage="measure", settings=s, inputs=[args.maps]) as out:
+        out.attrs["map_labels"] = json.dumps(labels)
         for name, settings in s["statistics"].items():
             stat = statistics.build(name, settings or {})
-            result = stat.measure(mapset)
-            g = out.create_group(name)
-            write_dataset(g, "values", result.values, result.unit, axes="[entry, bin]")
-            write_dataset(g, "bin_centers", result.bin_centers, result.bin_unit, quantity=result.bin_name)
-            if result.bin_edges is not None:
-                write_dataset(g, "bin_edges", result.bin_edges, result.bin_unit)
-            g.attrs["entries"] = json.dumps(result.entries)
-            g.attrs["bin_name"] = result.bin_name
-            for key, value in result.extra.items():
-                write_dataset(g, key, np.asarray(value), "1")
-            log(f"{name}: {len(result.entries)} entries x {len(result.bin_centers)} bins")
+            group = out.create_group(name)
+            for ms in smoothed_sets if stat.smoothed else [unsmoothed]:
+                result = stat.measure(ms)
+                g = group.create_group(scale_label(ms.smoothing_arcmin))
+                g.attrs["smoothing_arcmin"] = ms.smoothing_arcmin
+                write_dataset(g, "values", result.values, result.unit, axes="[entry, bin]")
+                write_dataset(g, "bin_centers", result.bin_centers, result.bin_unit, quantity=result.bin_name)
+                if result.bin_edges is not None:
+                    write_dataset(g, "bin_edges", result.bin_edges, result.bin_unit)
+                g.attrs["entries"] = json.dumps(result.entries)
+                g.attrs["bin_name"] = result.bin_name
+                for key, value in result.extra.items():
+                    write_dataset(g, key, np.asarray(value), "1")
+            log(f"{name}: {len(result.entries)} entries x {len(result.bin_centers)} bins"
+                f" at {len(group)} smoothing scale(s)")
+
+
+def scale_label(smoothing_arcmin: float) -> str:
+    """Group name of one smoothing scale in a statistics file."""
+    return "unsmoothed" if smoothing_arcmin == 0 else f"smoothing_{smoothing_arcmin:g}arcmin"
 
 
 # ------------------------------------------------------------------------------------
@@ -203,14 +254,24 @@ def build_parser() -> argparse.ArgumentParser:
     tr.add_argument("--planes", nargs="+", required=True, help="plane files, in increasing redshift")
     tr.add_argument("--output", required=True)
 
-    me = sub.add_parser("measure", help="measure the configured statistics on one map file")
+    ob = sub.add_parser("observe", help="add shape noise, mask and smoothing to one map file")
+    ob.add_argument("--realization", type=int, required=True)
+    ob.add_argument("--settings", required=True)
+    ob.add_argument("--maps", required=True)
+    ob.add_argument("--output", required=True)
+    ob.add_argument("--catalog", help="also write a mock shear catalog here (HDF5)")
+    ob.add_argument("--catalog-fits", help="... and as a FITS table here")
+    ob.add_argument("--fits", help="also write the first noisy convergence map as a FITS image here")
+
+    me = sub.add_parser("measure", help="measure the configured statistics on one observed-map file")
     me.add_argument("--settings", required=True)
     me.add_argument("--maps", required=True)
     me.add_argument("--output", required=True)
     return p
 
 
-COMMANDS = {"simulate": cmd_simulate, "slice": cmd_slice, "trace": cmd_trace, "measure": cmd_measure}
+COMMANDS = {"simulate": cmd_simulate, "slice": cmd_slice, "trace": cmd_trace, "observe": cmd_observe,
+            "measure": cmd_measure}
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -197,6 +197,21 @@ def _check_semantics(cfg: dict) -> None:
     check_sources_within_planes(srcs, snapshot_redshifts(cfg))
     for name in suite["models"]:
         model_cosmology(cfg, name)  # rejects impossible parameter combinations
+    sources = cfg.get("survey", {}).get("sources")
+    if sources is not None:
+        z_top = max(snapshot_redshifts(cfg))
+        sources.setdefault("z_max", z_top)
+        if sources["z_max"] > z_top + 1e-9:
+            raise RaytraceError(
+                f"survey.sources.z_max: {sources['z_max']} lies beyond the last lens plane "
+                f"(the highest snapshot redshift, z = {z_top:g})"
+            )
+        bins = sources.get("bins") or {}
+        if "edges" in bins and "n_bins" in bins:
+            raise RaytraceError("survey.sources.bins: give edges or n_bins, not both")
+        edges = bins.get("edges")
+        if edges is not None and list(edges) != sorted(set(edges)):
+            raise RaytraceError("survey.sources.bins.edges: must be strictly increasing")
     ps = cfg.get("statistics", {}).get("power_spectrum")
     if ps and ps.get("ell_min") and ps.get("ell_max") and ps["ell_min"] >= ps["ell_max"]:
         raise RaytraceError("statistics.power_spectrum.ell_max: must exceed ell_min")

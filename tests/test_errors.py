@@ -55,6 +55,9 @@ def edited(path_keys, value):
         (("suite", "models", "odd"), {"w0": -0.9}, "suite.models.odd"),
         (("suite", "fiducial", "h"), KeyError, "suite.fiducial"),
         (("statistics", "power_spectrum", "bins"), 0, "statistics.power_spectrum.bins"),
+        (("survey", "smoothing", "kernel"), "boxcar", "survey.smoothing.kernel"),
+        (("survey", "sources", "z_max"), 2.0, "survey.sources.z_max"),
+        (("survey", "noise", "sigma_e"), -0.1, "survey.noise.sigma_e"),
     ],
 )
 def test_config_errors_name_the_key(tmp_path, keys, value, expected):

@@ -68,10 +68,19 @@ def test_outputs_exist_with_their_layout(finished_run):
         assert f.attrs["method"] == "multi-plane"
         assert f.attrs["field_deg"] == 2.0
         assert "raytrace_version" in f.attrs and "settings_json" in f.attrs
+        assert f["bins/kappa"].shape == (2, 64, 64)  # the two tomographic bins
+    with h5py.File(work / "results/observed/fiducial/r0000.h5") as f:
+        assert f["kappa_smoothed"].shape == (2, 4, 64, 64)  # two scales x (2 sources + 2 bins)
+        assert 0.9 < f.attrs["valid_fraction"] < 1.0  # star holes remove a few per cent
     with h5py.File(work / "results/statistics/fiducial/r0000.h5") as f:
-        values = f["power_spectrum/values"][...]
-        assert values.shape == (3, 8)  # two autos and one cross spectrum, 8 ell bins
-        assert np.all(values[:2] > 0)
+        values = f["power_spectrum/unsmoothed/values"][...]
+        assert values.shape == (10, 8)  # 4 autos and 6 cross spectra of 4 maps, 8 ell bins
+        assert np.all(values[:1] > 0)
+        for name in ("pdf", "peaks", "minima", "minkowski", "moments"):
+            assert set(f[name]) == {"smoothing_2arcmin", "smoothing_4arcmin"}, name
+        assert "unsmoothed" in f["bispectrum"]
+    assert (work / "results/catalogs/fiducial/r0000.fits").exists()
+    assert (work / "results/fits/fiducial/r0000_kappa.fits").exists()
     # each stage logs its wall time and peak memory
     log = (work / "logs/trace/fiducial_r0000.log").read_text()
     assert "wall time" in log and "peak memory" in log
@@ -96,4 +105,12 @@ def test_changing_the_plane_grid_reruns_slicing_onward(finished_run):
     changed = copy.deepcopy(cfg)
     changed["planes"]["grid"] = 64
     jobs = planned_jobs(snakemake(work, changed, "-n"))
-    assert jobs == {"slice": 6, "trace": 2, "measure": 2, "all": 1}, jobs
+    assert jobs == {"slice": 6, "trace": 2, "observe": 2, "measure": 2, "all": 1}, jobs
+
+
+def test_changing_the_smoothing_reruns_observing_onward(finished_run):
+    work, cfg = finished_run
+    changed = copy.deepcopy(cfg)
+    changed["survey"]["smoothing"]["scales_arcmin"] = [3.0]
+    jobs = planned_jobs(snakemake(work, changed, "-n"))
+    assert jobs == {"observe": 2, "measure": 2, "all": 1}, jobs

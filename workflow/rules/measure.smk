@@ -1,4 +1,4 @@
-# Every configured statistic on one map file.
+# Every configured statistic, at every smoothing scale, on one observed-map file.
 
 
 def measure_settings():
@@ -7,7 +7,7 @@ def measure_settings():
 
 rule measure:
     input:
-        f"{OUT}/maps/{{model}}/r{{real}}.h5",
+        f"{OUT}/observed/{{model}}/r{{real}}.h5",
     output:
         f"{OUT}/statistics/{{model}}/r{{real}}.h5",
     params:

@@ -6,6 +6,7 @@ def trace_settings(model):
         {
             "cosmology": rtconfig.model_parameters(config, model),
             "maps": config["maps"] | {"realizations": None},  # the count does not change a map
+            "sources": config["survey"].get("sources"),
             "seed": config["seed"],
         }
     )
