@@ -106,15 +106,18 @@ def main() -> None:
     args = p.parse_args()
     print(f"threads: numba kernels are serial; scipy.fft workers=1; "
           f"NUMBA_NUM_THREADS={os.environ.get('NUMBA_NUM_THREADS', 'unset')}, cores={os.cpu_count()}")
-    n_side, grid, repeats, n_rays = (64, 512, 3, 512) if args.quick else (192, 1024, 5, 2048)
     box = 256.0
-    pos = snapshot_particles(n_side, box)
-    # the real workload: a snapshot's particles in their stored (Lagrangian) order
-    bench_deposit("snapshot order", pos[:, 0].copy(), pos[:, 1].copy(), box, grid, repeats)
-    # stress case: the same number of particles in uniformly random order (every update a cache miss)
-    rng = np.random.default_rng(0)
-    bench_deposit("uniform random order", rng.uniform(0, box, len(pos)), rng.uniform(0, box, len(pos)), box, grid,
-                  repeats)
+    # (particles per side, plane grid): the default demo's slicing problem, then a larger one
+    cases = [(64, 512)] if args.quick else [(128, 512), (192, 1024)]
+    repeats, n_rays = (3, 512) if args.quick else (5, 2048)
+    for n_side, grid in cases:
+        pos = snapshot_particles(n_side, box)
+        # the real workload: a snapshot's particles in their stored (Lagrangian) order
+        bench_deposit("snapshot order", pos[:, 0].copy(), pos[:, 1].copy(), box, grid, repeats)
+        # stress case: as many particles in uniformly random order (every update a cache miss)
+        rng = np.random.default_rng(0)
+        bench_deposit("uniform random order", rng.uniform(0, box, len(pos)), rng.uniform(0, box, len(pos)), box,
+                      grid, repeats)
     bench_multiplane(n_rays, repeats)
 
 

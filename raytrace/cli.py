@@ -261,7 +261,7 @@ def build_parser() -> argparse.ArgumentParser:
     ob.add_argument("--output", required=True)
     ob.add_argument("--catalog", help="also write a mock shear catalog here (HDF5)")
     ob.add_argument("--catalog-fits", help="... and as a FITS table here")
-    ob.add_argument("--fits", help="also write the first noisy convergence map as a FITS image here")
+    ob.add_argument("--fits", help="also write the noisy convergence maps as FITS images here")
 
     me = sub.add_parser("measure", help="measure the configured statistics on one observed-map file")
     me.add_argument("--settings", required=True)

@@ -24,6 +24,26 @@ def _wrap(i: int, n: int) -> int:
     return i + n if i < 0 else i
 
 
+@njit(cache=True, nogil=True, inline="always")
+def _cic_cells(u: float, n: int):
+    """Lower cell, upper cell and upper weight for u = x / cell - 1/2, periodic on n cells.
+
+    Positions lie in [0, box), so u lies in [-1/2, n - 1/2): int(u + 1) - 1 is the
+    floor, and only the lower index -1 (or n, for positions rounded up to the box side)
+    needs wrapping.
+    """
+    i0 = int(u + 1.0) - 1
+    f = u - i0
+    if i0 < 0:
+        i0 += n
+    elif i0 >= n:
+        i0 -= n
+    i1 = i0 + 1
+    if i1 >= n:
+        i1 -= n
+    return i0, i1, f
+
+
 # fastmath: positions are checked finite before deposition; reassociation only
 @njit(cache=True, nogil=True, fastmath=True)
 def deposit_planes_cic(pos, mass, box, grid, n_slabs, out):
@@ -51,27 +71,8 @@ def deposit_planes_cic(pos, mass, box, grid, n_slabs, out):
                 s = n_slabs - 1
             elif s < 0:
                 s = 0
-            ux = pos[p, ax] * inv_cell - 0.5
-            uy = pos[p, ay] * inv_cell - 0.5
-            # floor for u >= -1 (positions lie in [0, box)); wrap -1 and n at the edges
-            ix0 = int(ux + 1.0) - 1
-            iy0 = int(uy + 1.0) - 1
-            fx = ux - ix0
-            fy = uy - iy0
-            if ix0 < 0:
-                ix0 += grid
-            if iy0 < 0:
-                iy0 += grid
-            ix1 = ix0 + 1
-            if ix1 >= grid:
-                ix1 -= grid
-            iy1 = iy0 + 1
-            if iy1 >= grid:
-                iy1 -= grid
-            if ix0 >= grid:
-                ix0 -= grid
-            if iy0 >= grid:
-                iy0 -= grid
+            ix0, ix1, fx = _cic_cells(pos[p, ax] * inv_cell - 0.5, grid)
+            iy0, iy1, fy = _cic_cells(pos[p, ay] * inv_cell - 0.5, grid)
             my1 = m * fy
             my0 = m - my1
             out[a, s, iy0, ix0] += my0 - my0 * fx
@@ -99,26 +100,8 @@ def cic_2d(x, y, w, box, grid, out):
     """CIC of points (x, y) with weights w onto a periodic (grid, grid) array [iy, ix]."""
     inv_cell = grid / box
     for p in range(x.shape[0]):
-        ux = x[p] * inv_cell - 0.5
-        uy = y[p] * inv_cell - 0.5
-        ix0 = int(ux + 1.0) - 1  # as in deposit_planes_cic
-        iy0 = int(uy + 1.0) - 1
-        fx = ux - ix0
-        fy = uy - iy0
-        if ix0 < 0:
-            ix0 += grid
-        if iy0 < 0:
-            iy0 += grid
-        ix1 = ix0 + 1
-        if ix1 >= grid:
-            ix1 -= grid
-        iy1 = iy0 + 1
-        if iy1 >= grid:
-            iy1 -= grid
-        if ix0 >= grid:
-            ix0 -= grid
-        if iy0 >= grid:
-            iy0 -= grid
+        ix0, ix1, fx = _cic_cells(x[p] * inv_cell - 0.5, grid)
+        iy0, iy1, fy = _cic_cells(y[p] * inv_cell - 0.5, grid)
         wy1 = w[p] * fy
         wy0 = w[p] - wy1
         out[iy0, ix0] += wy0 - wy0 * fx

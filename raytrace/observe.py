@@ -19,6 +19,9 @@ Layout of the observed file (arrays [map, iy, ix]; ``map_labels`` names each map
 ``mask`` (1 = valid), ``noise_sigma`` [map], ``noise_sigma_smoothed`` [scale, map]; root
 attributes ``field_deg``, ``pixel_arcmin``, ``smoothing_arcmin``, ``smoothing_kernel``,
 ``valid_fraction``, ``map_labels``, ``galaxies_per_arcmin2``.
+
+The optional FITS file holds every noisy convergence map as an image extension named by its
+label (``Z0.50``, ``BIN0`` ...), with a gnomonic WCS.
 """
 
 from __future__ import annotations
@@ -118,7 +121,7 @@ def observe(
         sigma[b] = observed.noise_sigma_pix
         sigma_s[:, b] = observed.noise_sigma_smoothed
         for comp in ("gamma1", "gamma2"):
-            value = maps.__dict__[comp][b].copy()
+            value = getattr(maps, comp)[b].copy()
             if noise.get("enabled", True):
                 value += survey.shape_noise_maps(
                     n_pix, field_deg, float(noise.get("sigma_e", 0.26)), densities[b], seed=seed,
@@ -144,11 +147,10 @@ def observe(
     log(f"valid fraction {mask.mean():.4f}; written {output}")
     if fits_path is not None:
         fits = dict(settings.get("fits") or {})
-        b = 0
-        survey.write_convergence_fits(fits_path, noisy["kappa"][b], field_deg, ra_deg=float(fits.get("ra_deg", 0.0)),
-                                      dec_deg=float(fits.get("dec_deg", 0.0)),
-                                      z_source=float(maps.source_redshifts[0]) if len(maps.source_redshifts) else None,
-                                      header={"MAPLABEL": maps.labels[b]})
+        z_per_map = [float(z) for z in maps.source_redshifts] + [None] * (n_maps - len(maps.source_redshifts))
+        survey.write_convergence_fits(fits_path, noisy["kappa"], field_deg, ra_deg=float(fits.get("ra_deg", 0.0)),
+                                      dec_deg=float(fits.get("dec_deg", 0.0)), z_source=z_per_map,
+                                      labels=[label.upper() for label in maps.labels])
     if catalog_paths is not None:
         write_catalogs(maps, settings, mask, seed, realization, catalog_paths, log)
 

@@ -1599,37 +1599,54 @@ def map_wcs_header(n_pix: int, field_deg: float, ra_deg: float = 0.0, dec_deg: f
 
 def write_convergence_fits(path: str | os.PathLike, kappa: np.ndarray, field_deg: float, *,
                            ra_deg: float = 0.0, dec_deg: float = 0.0, z_source: float | None = None,
-                           header: Mapping[str, Any] | None = None, overwrite: bool = True) -> None:
-    """Write a convergence map as a FITS image with a TAN WCS, atomically.
+                           header: Mapping[str, Any] | None = None, overwrite: bool = True,
+                           labels: Sequence[str] | None = None) -> None:
+    """Write convergence maps as FITS images with a TAN WCS, atomically.
 
     Parameters
     ----------
     path : output file.
-    kappa : (P, P) map; stored as is, so FITS NAXIS1 is the map's x axis.
+    kappa : (P, P) map, written as the primary image; or (n, P, P) maps, written as
+        image extensions named by ``labels`` (``z_source`` may then be a sequence,
+        None entries for bins). Stored as is, so FITS NAXIS1 is the map's x axis.
     field_deg : field side in degrees.
     ra_deg, dec_deg : field centre on the sky (:func:`map_wcs_header`).
     z_source : source redshift, stored as ``ZSOURCE``.
     header : extra keywords.
     overwrite : replace an existing file.
+    labels : EXTNAME of each map of a stack.
     """
     from astropy.io import fits
 
     kappa = np.asarray(kappa)
-    if kappa.ndim != 2 or kappa.shape[0] != kappa.shape[1]:
-        raise ValueError(f"write_convergence_fits expects a square map, got {kappa.shape}")
+    stack = kappa.ndim == 3
+    maps = kappa if stack else kappa[None]
+    if maps.ndim != 3 or maps.shape[1] != maps.shape[2]:
+        raise ValueError(f"write_convergence_fits expects square maps, got {kappa.shape}")
     if Path(path).exists() and not overwrite:
         raise RaytraceError(f"{path}: output exists and overwrite is off")
-    hdu = fits.PrimaryHDU(data=kappa)
-    for k, v in map_wcs_header(kappa.shape[0], field_deg, ra_deg, dec_deg).items():
-        hdu.header[k] = v
-    hdu.header["BUNIT"] = ("", "convergence (dimensionless)")
-    hdu.header["FIELDDEG"] = (float(field_deg), "field side in degrees")
-    if z_source is not None:
-        hdu.header["ZSOURCE"] = (float(z_source), "source redshift")
-    for k, v in (header or {}).items():
-        hdu.header[k] = v
+    labels = list(labels) if labels is not None else [f"MAP{i}" for i in range(len(maps))]
+
+    def image(hdu, i):
+        for k, v in map_wcs_header(maps.shape[1], field_deg, ra_deg, dec_deg).items():
+            hdu.header[k] = v
+        hdu.header["BUNIT"] = ("", "convergence (dimensionless)")
+        hdu.header["FIELDDEG"] = (float(field_deg), "field side in degrees")
+        zs = z_source[i] if isinstance(z_source, (list, tuple, np.ndarray)) else z_source
+        if zs is not None:
+            hdu.header["ZSOURCE"] = (float(zs), "source redshift")
+        for k, v in (header or {}).items():
+            hdu.header[k] = v
+        return hdu
+
+    if stack:
+        # one image extension per map, named by its label; an empty primary HDU
+        hdus = [fits.PrimaryHDU()] + [image(fits.ImageHDU(data=m, name=labels[i]), i) for i, m in enumerate(maps)]
+        out = fits.HDUList(hdus)
+    else:
+        out = image(fits.PrimaryHDU(data=maps[0]), 0)
     with atomic_file(path) as tmp:
-        hdu.writeto(tmp)
+        out.writeto(tmp)
 
 
 # ---------------------------------------------------------------------------

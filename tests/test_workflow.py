@@ -80,7 +80,14 @@ def test_outputs_exist_with_their_layout(finished_run):
             assert set(f[name]) == {"smoothing_2arcmin", "smoothing_4arcmin"}, name
         assert "unsmoothed" in f["bispectrum"]
     assert (work / "results/catalogs/fiducial/r0000.fits").exists()
-    assert (work / "results/fits/fiducial/r0000_kappa.fits").exists()
+    from astropy.io import fits
+    from astropy.wcs import WCS
+
+    with fits.open(work / "results/fits/fiducial/r0000_kappa.fits") as hdus:
+        assert [h.name for h in hdus[1:]] == ["Z0.50", "Z1.00", "BIN0", "BIN1"]
+        # the field centre (config: ra 150, dec 2) sits between the two central pixels
+        ra, dec = WCS(hdus[1].header).wcs_pix2world([[31.5, 31.5]], 0)[0]
+        assert (ra, dec) == pytest.approx((150.0, 2.0), abs=1e-9)
     # each stage logs its wall time and peak memory
     log = (work / "logs/trace/fiducial_r0000.log").read_text()
     assert "wall time" in log and "peak memory" in log

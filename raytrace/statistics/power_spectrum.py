@@ -24,6 +24,29 @@ def rfft_mode_weights(n_pix: int) -> np.ndarray:
     return w
 
 
+def bin_modes(
+    values: np.ndarray, n_pix: int, pixel_rad: float, ell_edges: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Mode-weighted bin averages of an ``rfft2``-shaped array and of |ell| itself.
+
+    Returns (ell_mean, mean of ``values``, number of modes) per bin; an empty bin gets
+    its centre as ell_mean and NaN as value.
+    """
+    ell = ell_grid(n_pix, pixel_rad)
+    weight = np.broadcast_to(rfft_mode_weights(n_pix)[None, :], ell.shape).ravel()
+    idx = np.digitize(ell.ravel(), ell_edges) - 1
+    ok = (idx >= 0) & (idx < len(ell_edges) - 1)
+    nb = len(ell_edges) - 1
+    w = weight[ok]
+    n_modes = np.bincount(idx[ok], weights=w, minlength=nb)
+    sum_v = np.bincount(idx[ok], weights=w * values.ravel()[ok], minlength=nb)
+    sum_l = np.bincount(idx[ok], weights=w * ell.ravel()[ok], minlength=nb)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = sum_v / n_modes
+        ell_mean = np.where(n_modes > 0, sum_l / n_modes, 0.5 * (ell_edges[1:] + ell_edges[:-1]))
+    return ell_mean, mean, n_modes
+
+
 def ell_bin_edges(settings: dict, n_pix: int, pixel_rad: float) -> np.ndarray:
     """Bin edges from ``ell_edges`` or from ``ell_min``/``ell_max``/``bins``/``spacing``."""
     if settings.get("ell_edges") is not None:
@@ -44,6 +67,7 @@ def binned_cross_spectrum(
     ell_edges: np.ndarray,
     *,
     mask: np.ndarray | None = None,
+    pixel_window: bool = False,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     r"""Binned flat-sky (cross) power spectrum :math:`C_\ell` of square maps.
 
@@ -80,18 +104,11 @@ def binned_cross_spectrum(
     f1 = scipy.fft.rfft2(map1)
     f2 = f1 if map2 is None else scipy.fft.rfft2(map2)
     power = (f1 * np.conj(f2)).real * (pixel_rad**2 / n_pix**2) / fraction
-    ell = ell_grid(n_pix, pixel_rad)
-    weight = np.broadcast_to(rfft_mode_weights(n_pix)[None, :], ell.shape)
-    idx = np.digitize(ell.ravel(), ell_edges) - 1
-    ok = (idx >= 0) & (idx < len(ell_edges) - 1)
-    nb = len(ell_edges) - 1
-    w = weight.ravel()[ok]
-    n_modes = np.bincount(idx[ok], weights=w, minlength=nb)
-    sum_p = np.bincount(idx[ok], weights=w * power.ravel()[ok], minlength=nb)
-    sum_l = np.bincount(idx[ok], weights=w * ell.ravel()[ok], minlength=nb)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        cl = sum_p / n_modes
-        ell_mean = np.where(n_modes > 0, sum_l / n_modes, 0.5 * (ell_edges[1:] + ell_edges[:-1]))
+    if pixel_window:
+        fy = scipy.fft.fftfreq(n_pix)[:, None]  # cycles per pixel: l Delta / (2 pi)
+        fx = scipy.fft.rfftfreq(n_pix)[None, :]
+        power = power / (np.sinc(fx) * np.sinc(fy)) ** 2
+    ell_mean, cl, n_modes = bin_modes(power, n_pix, pixel_rad, ell_edges)
     return ell_mean, cl, n_modes
 
 
@@ -100,7 +117,13 @@ class PowerSpectrum(Statistic):
     """Convergence power spectrum, auto and (if ``cross: true``) cross between source bins.
 
     Settings: ``ell_edges`` or ``ell_min``, ``ell_max``, ``bins``, ``spacing`` (log | linear);
-    ``cross`` (default true). Measured on the unsmoothed maps.
+    ``cross`` (default true); ``pixel_window`` (default false). Measured on the unsmoothed maps.
+
+    Ray-traced maps sample the field at pixel centres and need no pixel-window
+    correction (the default). Maps whose pixels are averages over the pixel area (e.g.
+    made from galaxy catalogs) carry the window
+    :math:`W = {\rm sinc}(\ell_x\Delta/2)\,{\rm sinc}(\ell_y\Delta/2)`; with
+    ``pixel_window: true`` each mode is divided by :math:`W^2` before binning.
     """
 
     name = "power_spectrum"
@@ -113,7 +136,8 @@ class PowerSpectrum(Statistic):
         rows, entries, ell_mean, n_modes = [], [], None, None
         for i, j, label in pair_labels(labels, bool(self.settings.get("cross", True))):
             ell_mean, cl, n_modes = binned_cross_spectrum(
-                mapset.maps[i], None if i == j else mapset.maps[j], mapset.pixel_rad, edges, mask=mapset.mask
+                mapset.maps[i], None if i == j else mapset.maps[j], mapset.pixel_rad, edges, mask=mapset.mask,
+                pixel_window=bool(self.settings.get("pixel_window", False)),
             )
             rows.append(cl)
             entries.append(label)
@@ -181,14 +205,5 @@ def expected_binned_spectrum(
     padded[np.ix_(lags % size, lags % size)] = block
     spectrum = scipy.fft.fft2(padded).real * pixel_rad**2  # at frequencies 2 pi j / (2 n d)
     expected = spectrum[::2, ::2][:, : n // 2 + 1]  # the map's own Fourier frequencies, rfft half-plane
-    ell_map = ell_grid(n, pixel_rad)
-    weight_modes = np.broadcast_to(rfft_mode_weights(n)[None, :], ell_map.shape)
-    idx = np.digitize(ell_map.ravel(), ell_edges) - 1
-    ok = (idx >= 0) & (idx < len(ell_edges) - 1)
-    nb = len(ell_edges) - 1
-    w = weight_modes.ravel()[ok]
-    counts = np.bincount(idx[ok], weights=w, minlength=nb)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        cl_exp = np.bincount(idx[ok], weights=w * expected.ravel()[ok], minlength=nb) / counts
-        ell_mean = np.bincount(idx[ok], weights=w * ell_map.ravel()[ok], minlength=nb) / counts
+    ell_mean, cl_exp, _ = bin_modes(expected, n, pixel_rad, ell_edges)
     return ell_mean, cl_exp
