@@ -114,7 +114,7 @@ def binned_cross_spectrum(
 
 @register
 class PowerSpectrum(Statistic):
-    """Convergence power spectrum, auto and (if ``cross: true``) cross between source bins.
+    r"""Convergence power spectrum, auto and (if ``cross: true``) cross between source bins.
 
     Settings: ``ell_edges`` or ``ell_min``, ``ell_max``, ``bins``, ``spacing`` (log | linear);
     ``cross`` (default true); ``pixel_window`` (default false). Measured on the unsmoothed maps.
