@@ -91,6 +91,7 @@ def cmd_slice(args, log: Log) -> None:
 def cmd_trace(args, log: Log) -> None:
     import numpy as np
 
+    from . import survey
     from .config import check_sources_within_planes, plane_schedule
     from .cosmology import Cosmology
     from .hdf5 import atomic_h5, write_dataset
@@ -110,7 +111,7 @@ def cmd_trace(args, log: Log) -> None:
         if z_max > max(zs) + 1e-9:
             raise RaytraceError(f"survey.sources.z_max: {z_max} lies beyond the last lens plane (z = {max(zs):g})")
         schedule = plane_schedule(cosmo, thickness, z_max, zs)
-        _warn_geometry(cosmo, schedule, m["field_deg"], planes.box_mpc_h, log)
+        survey.check_box_repetition(m["field_deg"], float(schedule.chi_hi[-1]), planes.box_mpc_h)
         choice = choose_planes(schedule, planes.n_slabs, planes.box_mpc_h, s["seed"], args.realization, m["randomize_planes"])
         maps = trace(
             cosmo, schedule, choice, planes, box_mpc_h=planes.box_mpc_h, field_deg=m["field_deg"],
@@ -155,15 +156,6 @@ def _source_bins(sources):
 
     bins = survey.source_bins(sources, base_dir=Path.cwd())
     return bins, [SourceBin.from_nz(bins.z, bins.nz[i]) for i in range(bins.nz.shape[0])]
-
-
-def _warn_geometry(cosmo, schedule, field_deg: float, box: float, log: Callable[[str], None]) -> None:
-    import numpy as np
-
-    width = np.deg2rad(field_deg) * schedule.chi_hi[-1]
-    if width > box:
-        log(f"warning: the field is {width:.0f} Mpc/h wide at the farthest plane, wider than the box "
-            f"({box:g} Mpc/h): structures repeat across the map")
 
 
 def cmd_observe(args, log: Log) -> None:

@@ -150,3 +150,23 @@ def test_failure_while_writing_leaves_no_file(tmp_path):
             f.create_dataset("a", data=np.arange(10))
             raise RuntimeError("killed")
     assert_nothing_written(out)
+
+
+def test_field_wider_than_the_box_warns_in_the_log(tmp_path):
+    # Common practice: a light cone wider than the box repeats the same structures across
+    # the map; the trace stage says so in its log and still writes the maps.
+    rng = np.random.default_rng(0)
+    files = [tmp_path / f"snap.{i}.hdf5" for i in range(2)]
+    write_snapshot(files, {1: rng.uniform(0, 32, (4000, 3)).astype(np.float32)}, {1: 1.0}, box_mpc_h=32.0,
+                   redshift=0.5, omega_m=0.3, omega_lambda=0.7, h=0.7)
+    planes = tmp_path / "planes.h5"
+    assert run("slice", "--settings", SLICE, "--snapshot", *map(str, files), "--output", str(planes)).returncode == 0
+    settings = {"cosmology": SMALL["suite"]["fiducial"], "seed": 1,
+                "maps": {"field_deg": 5.0, "pixels": 16, "method": "born", "source_redshifts": [0.5],
+                         "randomize_planes": True}}
+    out = tmp_path / "maps.h5"
+    proc = run("trace", "--model", "m", "--realization", "0", "--settings", json.dumps(settings),
+               "--planes", str(planes), "--output", str(out))
+    assert proc.returncode == 0, proc.stderr
+    assert out.exists()
+    assert any("maps.field_deg" in line and "wider than the box" in line for line in proc.stderr.splitlines())
