@@ -15,7 +15,7 @@ import resource
 import sys
 import time
 from pathlib import Path
-from typing import Any, Callable, Sequence
+from typing import Sequence
 
 from .errors import RaytraceError
 

@@ -154,17 +154,6 @@ def plane_schedule(cosmo: Cosmology, thickness_mpc_h: float, z_max: float, snaps
     return PlaneSchedule(chi_lo, chi_hi, chi, z, nearest)
 
 
-def schedule_for_model(cfg: Mapping, model: str) -> PlaneSchedule:
-    cosmo = model_cosmology(cfg, model)
-    z_src = max(cfg["maps"]["source_redshifts"])
-    return plane_schedule(cosmo, cfg["planes"]["thickness_mpc_h"], z_src, snapshot_redshifts(cfg))
-
-
-def max_plane_redshift(cfg: Mapping) -> float:
-    """Planes use snapshots; they reach at most the highest snapshot redshift."""
-    return max(snapshot_redshifts(cfg))
-
-
 def check_sources_within_planes(source_redshifts, snapshot_z) -> None:
     """Planes are cut from snapshots: a source beyond the highest snapshot has no planes."""
     z_last = max(snapshot_z)

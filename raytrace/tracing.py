@@ -58,7 +58,7 @@ from __future__ import annotations
 import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable, Mapping, Sequence
+from typing import Callable, Sequence
 
 import numpy as np
 from numba import njit
@@ -282,10 +282,11 @@ class SourceBin:
     def from_nz(cls, z: np.ndarray, nz: np.ndarray) -> "SourceBin":
         z = np.asarray(z, dtype=float)
         nz = np.asarray(nz, dtype=float)
-        dz = np.gradient(z)  # trapezoid-like weights on a uniform or smooth grid
-        w = nz * dz
-        w[0] *= 0.5 if len(z) > 1 and np.isclose(dz[0], z[1] - z[0]) else 1.0
-        w[-1] *= 0.5 if len(z) > 1 and np.isclose(dz[-1], z[-1] - z[-2]) else 1.0
+        dz = np.diff(z)
+        w = np.zeros_like(z)  # trapezoid-rule weights
+        w[:-1] += 0.5 * dz
+        w[1:] += 0.5 * dz
+        w *= nz
         total = w.sum()
         if not total > 0:
             raise RaytraceError("survey.sources: a tomographic bin holds no galaxies")

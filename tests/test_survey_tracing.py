@@ -11,25 +11,16 @@ from raytrace.statistics import MapSet, build
 from raytrace.statistics.power_spectrum import binned_cross_spectrum, expected_binned_spectrum
 from raytrace.tracing import H0_OVER_C, PlaneFiles, SourceBin, choose_planes, trace
 
-from test_tracing_physics import CHI_MIN, FIELD_DEG, PIXELS, limber, snapshot_power  # noqa: F401
+from test_tracing_physics import CHI_MIN, FIELD_DEG, PIXELS, snapshot_power  # noqa: F401 (a fixture)
 
 NZ = {"nz": {"kind": "smail", "z0": 0.45, "alpha": 2.0, "beta": 1.5}, "z_max": 1.0, "z_points": 201,
       "bins": {"n_bins": 2}, "photoz_sigma": 0.05}
 
 
 def traced(suite, realization, method, sources=(), bins=(), chi_min=0.0, field_deg=FIELD_DEG, pixels=PIXELS):
-    sched = suite.schedule(1.0)
-    with PlaneFiles(suite.plane_files) as planes:
-        choice = choose_planes(sched, planes.n_slabs, suite.box, 7, realization, True)
-        choice.snapshot[sched.chi < chi_min] = -1
-
-        def load(snapshot, axis, slab, names):
-            if snapshot < 0:
-                return [np.zeros((suite.grid, suite.grid), dtype=np.float32) for _ in names]
-            return planes(snapshot, axis, slab, names)
-
-        return trace(suite.cosmo, sched, choice, load, box_mpc_h=suite.box, field_deg=field_deg, pixels=pixels,
-                     source_redshifts=list(sources), method=method, source_bins=list(bins))
+    """One realisation of the session suite with planes out to z = 1 (the n(z) grid's end)."""
+    return suite.trace(realization, method=method, sources=sources, bins=bins, chi_min=chi_min,
+                       field_deg=field_deg, pixels=pixels, z_max=1.0)
 
 
 def test_born_bin_equals_weighted_sum_of_source_planes(suite):
