@@ -19,6 +19,7 @@ if not config:
 
 
 import raytrace.config as rtconfig
+import raytrace.systematics as rtsystematics
 from raytrace.errors import RaytraceError
 
 try:
@@ -36,9 +37,11 @@ include: "workflow/rules/slice.smk"
 include: "workflow/rules/trace.smk"
 include: "workflow/rules/observe.smk"
 include: "workflow/rules/measure.smk"
+include: "workflow/rules/systematics.smk"
 
 
 rule all:
     input:
         statistics_files(),
+        variant_statistics_files(),
     default_target: True

@@ -91,7 +91,7 @@ def cmd_slice(args, log: Log) -> None:
 def cmd_trace(args, log: Log) -> None:
     import numpy as np
 
-    from . import survey
+    from . import survey, systematics
     from .config import check_sources_within_planes, plane_schedule
     from .cosmology import Cosmology
     from .hdf5 import atomic_h5, write_dataset
@@ -101,6 +101,12 @@ def cmd_trace(args, log: Log) -> None:
     cosmo = Cosmology.from_mapping(s["cosmology"], where=f"suite.models.{args.model}")
     m = s["maps"]
     bins, source_bins = _source_bins(s.get("sources"))
+    plan, alignment_bins = None, []
+    if s.get("systematics"):
+        if bins is None:
+            raise RaytraceError("survey.systematics: systematics act on tomographic bins; configure survey.sources")
+        plan = systematics.plan_trace(bins.z, bins.nz, s["systematics"])
+        source_bins, alignment_bins = plan.source_bins(), plan.alignment_bins(cosmo)
     with PlaneFiles(args.planes) as planes:
         zs = [float(a["redshift"]) for a in planes.attrs]
         if zs != sorted(zs):
@@ -116,18 +122,23 @@ def cmd_trace(args, log: Log) -> None:
         maps = trace(
             cosmo, schedule, choice, planes, box_mpc_h=planes.box_mpc_h, field_deg=m["field_deg"],
             pixels=m["pixels"], source_redshifts=m["source_redshifts"], method=m["method"],
-            source_bins=source_bins, log=log,
+            source_bins=source_bins, alignment_bins=alignment_bins, log=log,
         )
         n_src = len(m["source_redshifts"])
+        n_bins = bins.n_bins if bins is not None else 0
+        lensing = ("kappa", "gamma1", "gamma2", "omega")
         with atomic_h5(args.output, stage="trace", settings=s, inputs=args.planes, seed=s["seed"]) as f:
-            for key, value in maps.items():
-                write_dataset(f, key, value[:n_src].astype(np.float32), "1", axes="[source, iy, ix]")
+            for key in lensing:
+                write_dataset(f, key, maps[key][:n_src].astype(np.float32), "1", axes="[source, iy, ix]")
             if bins is not None:
                 g = f.create_group("bins")
-                for key, value in maps.items():
-                    write_dataset(g, key, value[n_src:].astype(np.float32), "1", axes="[bin, iy, ix]")
+                for key in lensing:
+                    write_dataset(g, key, maps[key][n_src:n_src + n_bins].astype(np.float32), "1", axes="[bin, iy, ix]")
                 write_dataset(g, "z", bins.z, "1")
-                write_dataset(g, "nz", bins.nz, "1", axes="[bin, z]", description="true-redshift n(z) of each bin")
+                write_dataset(g, "nz", bins.nz if plan is None else plan.nz, "1", axes="[bin, z]",
+                              description="true-redshift n(z) of each bin")
+                if plan is not None:
+                    systematics.write_traced_systematics(g, plan, maps, n_src)
                 write_dataset(g, "fraction", bins.fractions, "1", description="share of the galaxy sample")
                 write_dataset(g, "edges", np.asarray(bins.edges, dtype=float), "1", description="photometric bin edges")
             f.attrs["source_redshifts"] = np.asarray(m["source_redshifts"], dtype=float)

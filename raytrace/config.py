@@ -201,8 +201,35 @@ def _check_semantics(cfg: dict) -> None:
         edges = bins.get("edges")
         if edges is not None and list(edges) != sorted(set(edges)):
             raise RaytraceError("survey.sources.bins.edges: must be strictly increasing")
+    _check_systematics(cfg)
     ps = cfg.get("statistics", {}).get("power_spectrum")
     if ps and ps.get("ell_min") and ps.get("ell_max") and ps["ell_min"] >= ps["ell_max"]:
         raise RaytraceError("statistics.power_spectrum.ell_max: must exceed ell_min")
     if ps and ps.get("ell_edges") is not None and list(ps["ell_edges"]) != sorted(set(ps["ell_edges"])):
         raise RaytraceError("statistics.power_spectrum.ell_edges: must be strictly increasing")
+
+
+def configured_bin_count(sources: Mapping | None) -> int:
+    """Number of tomographic bins ``survey.sources`` defines (0 without sources)."""
+    if sources is None:
+        return 0
+    bins = sources.get("bins") or {}
+    if bins.get("n_bins") is not None:
+        return int(bins["n_bins"])
+    if bins.get("edges") is not None:
+        return len(bins["edges"]) - 1
+    return 1
+
+
+def _check_systematics(cfg: dict) -> None:
+    from .systematics import KEY, check_settings
+
+    survey = cfg.get("survey", {})
+    systematics = survey.get("systematics")
+    if systematics is None:
+        return
+    sources = survey.get("sources")
+    check_settings(systematics, configured_bin_count(sources), has_sources=sources is not None)
+    for name in systematics.get("variant_models") or []:
+        if name not in cfg["suite"]["models"]:
+            raise RaytraceError(f"{KEY}.variant_models: {name!r} is not one of suite.models")

@@ -34,7 +34,7 @@ class Suite:
         return plane_schedule(self.cosmo, self.thickness, z_max, self.snapshot_z)
 
     def trace(self, realization: int, *, method: str, sources=(), field_deg: float, pixels: int, randomize=True,
-              seed=7, chi_min: float = 0.0, bins=(), z_max: float | None = None):
+              seed=7, chi_min: float = 0.0, bins=(), z_max: float | None = None, alignment_bins=()):
         """Trace one realisation; planes nearer than ``chi_min`` are left empty if asked."""
         sched = self.schedule(z_max if z_max is not None else max(sources))
         with PlaneFiles(self.plane_files) as planes:
@@ -48,7 +48,8 @@ class Suite:
                 return planes(snapshot, axis, slab, names)
 
             return trace(self.cosmo, sched, choice, load, box_mpc_h=self.box, field_deg=field_deg,
-                         pixels=pixels, source_redshifts=list(sources), method=method, source_bins=list(bins))
+                         pixels=pixels, source_redshifts=list(sources), method=method, source_bins=list(bins),
+                         alignment_bins=list(alignment_bins))
 
 
 @pytest.fixture(scope="session")

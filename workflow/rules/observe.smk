@@ -1,8 +1,10 @@
 # Shape noise, mask and smoothing (and optionally catalogs and FITS images) on one map file.
 
 
-def observe_settings():
+def observe_settings(variant=None):
     survey = {k: v for k, v in config["survey"].items() if k != "sources"}  # sources: trace
+    if "systematics" in survey:  # without the variants, or with one variant's values put in
+        survey["systematics"] = rtsystematics.observe_settings(survey["systematics"], variant)
     return as_json({"survey": survey, "seed": config["seed"]})
 
 

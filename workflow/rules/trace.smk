@@ -2,14 +2,17 @@
 
 
 def trace_settings(model):
-    return as_json(
-        {
-            "cosmology": rtconfig.model_parameters(config, model),
-            "maps": config["maps"] | {"realizations": None},  # the count does not change a map
-            "sources": config["survey"].get("sources"),
-            "seed": config["seed"],
-        }
-    )
+    settings = {
+        "cosmology": rtconfig.model_parameters(config, model),
+        "maps": config["maps"] | {"realizations": None},  # the count does not change a map
+        "sources": config["survey"].get("sources"),
+        "seed": config["seed"],
+    }
+    # only the systematics keys that change the traced maps (nuisance values: observe)
+    traced_systematics = rtsystematics.trace_settings(config["survey"].get("systematics"))
+    if traced_systematics:
+        settings["systematics"] = traced_systematics
+    return as_json(settings)
 
 
 rule trace:
