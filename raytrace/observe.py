@@ -1,4 +1,4 @@
-"""The observing stage: shape noise, mask and smoothing on ray-traced maps.
+r"""The observing stage: shape noise, mask and smoothing on ray-traced maps.
 
 Input: a map file of the trace stage (single source redshifts and, if configured,
 tomographic bins). Output: one observed-map file with, for every map (source redshift or
@@ -309,7 +309,7 @@ def observe(
 
 def write_catalogs(maps: TracedMaps, settings, mask, seed, realization, paths, log, *,
                    nuisance: Nuisance | None = None, path: str | Path = "the map file") -> None:
-    """Mock shear catalog of every tomographic bin (or of one n(z) over the source planes).
+    r"""Mock shear catalog of every tomographic bin (or of one n(z) over the source planes).
 
     With ``nuisance`` each bin's galaxies are drawn from the selected n(z) variant, their
     shear signal becomes :math:`(1+m)(g + A\gamma^I) + c` (:func:`raytrace.survey.mock_catalog`),
