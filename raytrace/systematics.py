@@ -69,7 +69,7 @@ from __future__ import annotations
 import copy
 import warnings
 from dataclasses import dataclass, field
-from typing import Any, Mapping, Sequence
+from typing import Any, Mapping
 
 import numpy as np
 import scipy.fft
@@ -224,30 +224,46 @@ def trace_settings(systematics: Mapping | None) -> dict | None:
     observe stage applies (``m``, ``c1``, ``c2``, ``amplitude``, offsets, variants) never
     re-traces.
     """
+    neutral = {"shift": 0.0, "stretch": 1.0}  # values that leave the traced n(z) as it is
     out = {}
     for name, keys in TRACE_KEYS.items():
         if systematics and name in systematics and systematics[name] is not None:
             sec = _section(systematics, name)
-            sub = {k: sec[k] for k in keys if k in sec}
+            sub = {k: sec[k] for k in keys if k in sec and not _all_equal(sec[k], neutral.get(k))}
             if name == "intrinsic_alignment" or sub:
                 out[name] = sub  # an alignment section asks for alignment maps, even if empty
     return out or None
 
 
-def observe_settings(systematics: Mapping | None, variant: str | None = None) -> dict | None:
+def _all_equal(value: Any, neutral: float | None) -> bool:
+    if neutral is None:
+        return False
+    values = value if isinstance(value, (list, tuple)) else [value]
+    return all(float(v) == neutral for v in values)
+
+
+def observe_settings(systematics: Mapping | None, variant: str | None = None, *,
+                     values: Mapping | None = None) -> dict | None:
     """``survey.systematics`` as one observe job uses it: without ``variants`` and
-    ``variant_models``, with the named variant's nuisance values put in."""
-    if not systematics:
+    ``variant_models``, with nuisance values put in key by key: those of the named
+    variant of ``systematics``, or ``values`` (a mapping like one variant) if given."""
+    if not systematics and values is None:
         return None
-    base = {k: copy.deepcopy(v) for k, v in systematics.items() if k not in ("variants", "variant_models")}
-    if variant is None:
-        return base
-    variants = systematics.get("variants") or {}
-    if variant not in variants:
-        raise RaytraceError(f"{KEY}.variants.{variant}: no such variant")
-    for name, values in (variants[variant] or {}).items():
+    base = {k: copy.deepcopy(v) for k, v in (systematics or {}).items() if k not in ("variants", "variant_models")}
+    if values is None and variant is not None:
+        variants = (systematics or {}).get("variants") or {}
+        if variant not in variants:
+            raise RaytraceError(f"{KEY}.variants.{variant}: no such variant")
+        values = variants[variant]
+    where = f"{KEY}.variants.{variant}" if variant is not None else "nuisance values"
+    for name, section in (values or {}).items():
+        if name not in NUISANCE_KEYS:
+            raise RaytraceError(f"{where}.{name}: not a nuisance section ({sorted(NUISANCE_KEYS)})")
+        unknown = set(section or {}) - set(NUISANCE_KEYS[name])
+        if unknown:
+            raise RaytraceError(f"{where}.{name}.{sorted(unknown)[0]}: not a nuisance value")
         sec = dict(base.get(name) or {})
-        sec.update(values or {})
+        sec.update(section or {})
         base[name] = sec
     return base
 

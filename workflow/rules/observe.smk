@@ -1,10 +1,11 @@
 # Shape noise, mask and smoothing (and optionally catalogs and FITS images) on one map file.
 
 
-def observe_settings(variant=None):
+def observe_settings(nuisance=None):
     survey = {k: v for k, v in config["survey"].items() if k != "sources"}  # sources: trace
-    if "systematics" in survey:  # without the variants, or with one variant's values put in
-        survey["systematics"] = rtsystematics.observe_settings(survey["systematics"], variant)
+    systematics = rtsystematics.observe_settings(survey.pop("systematics", None), values=nuisance)
+    if systematics is not None:  # without the variants; with a variant's nuisance values if given
+        survey["systematics"] = systematics
     return as_json({"survey": survey, "seed": config["seed"]})
 
 

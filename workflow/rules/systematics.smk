@@ -4,7 +4,10 @@
 
 
 def nuisance_variants():
-    """Variant name -> its nuisance values (what observe_settings(variant) puts in)."""
+    """Variant name -> its nuisance values, put over the nominal ones by observe_settings().
+
+    Values are a mapping like one entry of survey.systematics.variants. To add variants made
+    elsewhere (e.g. forecast derivative steps), extend this function."""
     return dict((config["survey"].get("systematics") or {}).get("variants") or {})
 
 
@@ -30,7 +33,7 @@ rule observe_variant:
     output:
         f"{OUT}/variants/{{variant}}/observed/{{model}}/r{{real}}.h5",
     params:
-        settings=lambda w: observe_settings(w.variant),
+        settings=lambda w: observe_settings(nuisance_variants()[w.variant]),
     log:
         "logs/observe_variant/{variant}_{model}_r{real}.log",
     benchmark:
