@@ -172,7 +172,7 @@ def apply_systematics(maps: TracedMaps, nuisance: Nuisance, *, path: str | Path 
     maps identical bit for bit. ``convergence_from_shear`` is applied by :func:`observe`,
     after noise.
     """
-    if nuisance.is_null():
+    if nuisance.replace(convergence_from_shear=False).is_null():
         return maps
     n_src, n_bins = maps.n_sources, maps.n_bins
     if n_bins == 0:
@@ -324,7 +324,7 @@ def write_catalogs(maps: TracedMaps, settings, mask, seed, realization, paths, l
     columns: dict[str, list[np.ndarray]] = {}
     nzs = maps.bin_nz or [(np.asarray(maps.source_redshifts), np.ones(n_src))]
     fractions = maps.density_fraction[n_src:] if maps.bin_nz else np.ones(1)
-    active = nuisance is not None and not nuisance.is_null()
+    active = nuisance is not None and not nuisance.replace(convergence_from_shear=False).is_null()
     if active and not maps.bin_nz:
         raise RaytraceError(f"{path}: {SYSTEMATICS} act on tomographic bins, and the file holds none")
     for b, ((z, nz), frac) in enumerate(zip(nzs, fractions)):

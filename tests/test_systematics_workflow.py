@@ -65,6 +65,24 @@ def traced_without_alignment(suite, tmp_path_factory):
     return out
 
 
+def test_convergence_from_shear_serves_every_map(traced_without_alignment, tmp_path):
+    # the Kaiser-Squires option is a way of making maps, not a bin systematic: every observed
+    # convergence, source planes included, is the inversion of the observed shear (the inversion
+    # itself is checked against Kaiser & Squires 1993 on a periodic field in test_systematics)
+    from raytrace.observe import observe
+    from raytrace.systematics import kaiser_squires
+
+    out = tmp_path / "observed.h5"
+    observe(traced_without_alignment, out, {"noise": {"enabled": False}, "systematics": {"convergence_from_shear": True}},
+            seed=1, realization=0)
+    with h5py.File(out) as f, h5py.File(traced_without_alignment) as t:
+        shear = [(t["gamma1"][0], t["gamma2"][0])] + [(t["bins/gamma1"][b], t["bins/gamma2"][b]) for b in range(2)]
+        for i, (g1, g2) in enumerate(shear):
+            expected = kaiser_squires(g1.astype(float), g2.astype(float))
+            np.testing.assert_allclose(f["kappa"][i], expected, rtol=1e-5, atol=1e-6 * np.abs(expected).max())
+        assert not np.allclose(f["kappa"][0], t["kappa"][0] - t["kappa"][0].mean(), rtol=0.05)  # edge effects
+
+
 @pytest.mark.parametrize("systematics, expected", [
     ({"intrinsic_alignment": {"amplitude": 1.0}}, "survey.systematics.intrinsic_alignment.amplitude: {maps} holds no alignment maps"),
     ({"photoz": {"offset": [0.0, 0.02]}}, "{maps}: no bins traced for survey.systematics.photoz.offset = 0.02"),
