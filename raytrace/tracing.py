@@ -429,12 +429,18 @@ def trace(
         out.update({k: np.zeros((len(alignment_bins), pixels, pixels)) for k in ("ia_kappa", "ia_gamma1", "ia_gamma2")})
     t0 = time.perf_counter()
 
-    def add_alignment(k: int, tidal: np.ndarray) -> None:
-        for b in np.nonzero(ia_w[:, k])[0]:
+    def add_alignment(k: int, tidal: np.ndarray, trace_sum=None, trace_diff=None) -> None:
+        used = np.nonzero(ia_w[:, k])[0]
+        if not used.size:
+            return
+        t_sum = (tidal[0] + tidal[1]).reshape(pixels, pixels) if trace_sum is None else trace_sum
+        t_diff = (tidal[0] - tidal[1]).reshape(pixels, pixels) if trace_diff is None else trace_diff
+        t_xy = tidal[2].reshape(pixels, pixels)
+        for b in used:
             wb = ia_w[b, k]
-            out["ia_kappa"][b] -= (wb * (tidal[0] + tidal[1])).reshape(pixels, pixels)
-            out["ia_gamma1"][b] -= (wb * (tidal[0] - tidal[1])).reshape(pixels, pixels)
-            out["ia_gamma2"][b] -= (2.0 * wb * tidal[2]).reshape(pixels, pixels)
+            out["ia_kappa"][b] -= wb * t_sum
+            out["ia_gamma1"][b] -= wb * t_diff
+            out["ia_gamma2"][b] -= 2.0 * wb * t_xy
 
     def plane_fields(k: int, names: Sequence[str]):
         return load(int(choice.snapshot[k]), int(choice.axis[k]), int(choice.slab[k]), names)
@@ -458,13 +464,17 @@ def trace(
                 continue
             fxx, fyy, fxy = plane_fields(k, ("d2phi_dxx", "d2phi_dyy", "d2phi_dxy"))
             born_tidal(tx, ty, float(schedule.chi[k]), fxx, fyy, fxy, *geometry(k), tidal)
-            add_alignment(k, tidal)
+            # the same sums for every map (each product below is formed as before: scalar first)
+            t_sum = (tidal[0] + tidal[1]).reshape(pixels, pixels)
+            t_diff = (tidal[0] - tidal[1]).reshape(pixels, pixels)
+            t_xy = tidal[2].reshape(pixels, pixels)
+            add_alignment(k, tidal, t_sum, t_diff)
             for i, wi in enumerate(w):
                 if wi == 0.0:
                     continue
-                out["kappa"][i] += (0.5 * wi * (tidal[0] + tidal[1])).reshape(pixels, pixels)
-                out["gamma1"][i] += (0.5 * wi * (tidal[0] - tidal[1])).reshape(pixels, pixels)
-                out["gamma2"][i] += (wi * tidal[2]).reshape(pixels, pixels)
+                out["kappa"][i] += 0.5 * wi * t_sum
+                out["gamma1"][i] += 0.5 * wi * t_diff
+                out["gamma2"][i] += wi * t_xy
             log(f"plane {k + 1}/{n_needed} (Born, {time.perf_counter() - t0:.1f} s)")
         return out
 
