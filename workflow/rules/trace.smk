@@ -1,11 +1,11 @@
-# One realisation of one model: random plane choices, multi-plane or Born tracing.
+# A batch of realisations of one model: random plane choices, multi-plane or Born tracing.
 
 
 def trace_settings(model):
     return as_json(
         {
             "cosmology": rtconfig.model_parameters(config, model),
-            "maps": config["maps"] | {"realizations": None},  # the count does not change a map
+            "maps": config["maps"] | {"realizations": None, "realizations_per_job": None},  # counts do not change a map
             "sources": config["survey"].get("sources"),
             "seed": config["seed"],
         }
@@ -16,15 +16,17 @@ rule trace:
     input:
         lambda w: plane_files(w.model),
     output:
-        f"{OUT}/maps/{{model}}/r{{real}}.h5",
+        batch_outputs(f"{OUT}/maps/{{model}}/r{{batch}}.h5"),
     params:
         settings=lambda w: trace_settings(w.model),
+        realizations=batch_realizations,
+        outputs=lambda w, output: quoted(output),
     log:
-        "logs/trace/{model}_r{real}.log",
+        "logs/trace/{model}_b{batch}.log",
     benchmark:
-        "logs/benchmarks/trace/{model}_r{real}.tsv"
+        "logs/benchmarks/trace/{model}_b{batch}.tsv"
     resources:
         mem_mb=lambda w: 300 + (config["maps"]["pixels"] ** 2 * 8 * (12 + 8) + 5 * config["planes"]["grid"] ** 2 * 8) // 2**20,
     shell:
-        "{RAYTRACE} trace --model {wildcards.model} --realization {wildcards.real} "
-        "--settings {params.settings:q} --planes {input:q} --output {output:q} 2> {log:q}"
+        "{RAYTRACE} trace --model {wildcards.model} --realization {params.realizations} "
+        "--settings {params.settings:q} --planes {input:q} --output {params.outputs} 2> {log:q}"
