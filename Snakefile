@@ -1,4 +1,4 @@
-# raytrace: N-body snapshots -> lens planes -> ray-traced maps -> statistics.
+# raytrace: N-body snapshots -> lens planes -> ray-traced maps -> statistics -> forecasts.
 # Rules are thin: each names its files, params, resources and log, and calls one
 # `raytrace` subcommand with the configuration section it depends on.
 import json
@@ -38,10 +38,18 @@ include: "workflow/rules/trace.smk"
 include: "workflow/rules/observe.smk"
 include: "workflow/rules/measure.smk"
 include: "workflow/rules/systematics.smk"
+include: "workflow/rules/stack.smk"
+include: "workflow/rules/forecast.smk"
+include: "workflow/rules/report.smk"
+
+
+report: "workflow/report/workflow.rst"
 
 
 rule all:
     input:
-        statistics_files(),
-        variant_statistics_files(),
+        [f"{OUT}/stacks/{m}.h5" for m in MODELS],
+        report_files(),
+        forecast_outputs() if FORECAST else [],
+        variant_stack_files(),
     default_target: True

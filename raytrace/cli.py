@@ -226,6 +226,60 @@ def cmd_measure(args, log: Log) -> None:
                 f" at {len(group)} smoothing scale(s)")
 
 
+def cmd_stack(args, log: Log) -> None:
+    from .stack import read_statistics, write_stack
+
+    table, bin_names = read_statistics(args.statistics, model=args.model)
+    write_stack(args.output, table, bin_names, model=args.model, inputs=args.statistics)
+    log(f"{args.model}: {table.n_realizations} realisations x {table.n_data} elements written to {args.output}")
+
+
+def cmd_forecast(args, log: Log) -> None:
+    from .forecasting import run_forecast, write_products
+    from .stack import read_stack
+
+    s = _settings(args.settings)
+    stacks = {read_stack(path)[0].name: path for path in args.stacks}
+    products = run_forecast(s, stacks, log=log)
+    write_products(products, h5_path=args.output, csv_path=args.table, html_path=args.html,
+                   diagnostics_path=args.diagnostics, png_path=args.ellipses, settings=s, inputs=args.stacks,
+                   degradation_path=args.degradation)
+    log(f"forecast of {len(products.all_results())} combination(s) written to {args.output}")
+
+
+def cmd_plot_maps(args, log: Log) -> None:
+    from .report import plot_example_maps
+
+    s = _settings(args.settings)
+    if len(args.maps) != len(args.observed) or len(args.maps) != len(s["models"]):
+        raise RaytraceError("--maps, --observed and the settings' models must have the same length")
+    plot_example_maps(dict(zip(s["models"], args.maps)), dict(zip(s["models"], args.observed)), s["map"],
+                      args.output, s.get("smoothing_arcmin"))
+    log(f"maps of {len(args.maps)} model(s) drawn in {args.output}")
+
+
+def cmd_plot_statistics(args, log: Log) -> None:
+    from .report import plot_statistic_ratios
+    from .stack import read_stack
+
+    s = _settings(args.settings)
+    if len(args.output) != len(s["statistics"]):
+        raise RaytraceError(f"--output: {len(args.output)} files for {len(s['statistics'])} statistics")
+    stacks = {read_stack(p)[0].name: p for p in args.stacks}
+    for name, out in zip(s["statistics"], args.output):
+        plot_statistic_ratios(stacks, name, reference=s["reference"], error_model=s["error_model"],
+                              map_label=s["map"], path=out, smoothing_arcmin=s.get("smoothing_arcmin"),
+                              area_factor=float(s.get("area_factor", 1.0)))
+        log(f"{name}: ratios to {s['reference']} drawn in {out}")
+
+
+def cmd_provenance(args, log: Log) -> None:
+    from .report import write_provenance
+
+    write_provenance(args.output, _settings(args.config), Path(__file__).resolve().parents[1])
+    log(f"provenance written to {args.output}")
+
+
 def scale_label(smoothing_arcmin: float) -> str:
     """Group name of one smoothing scale in a statistics file."""
     return "unsmoothed" if smoothing_arcmin == 0 else f"smoothing_{smoothing_arcmin:g}arcmin"
@@ -252,29 +306,78 @@ def build_parser() -> argparse.ArgumentParser:
 
     tr = sub.add_parser("trace", help="ray-trace one realisation of one model")
     tr.add_argument("--model", required=True)
-    tr.add_argument("--realization", type=int, required=True)
+    tr.add_argument("--realization", type=int, nargs="+", required=True, help="one or more realisations")
     tr.add_argument("--settings", required=True)
     tr.add_argument("--planes", nargs="+", required=True, help="plane files, in increasing redshift")
-    tr.add_argument("--output", required=True)
+    tr.add_argument("--output", nargs="+", required=True, help="one map file per realisation")
 
     ob = sub.add_parser("observe", help="add shape noise, mask and smoothing to one map file")
-    ob.add_argument("--realization", type=int, required=True)
+    ob.add_argument("--realization", type=int, nargs="+", required=True, help="one or more realisations")
     ob.add_argument("--settings", required=True)
-    ob.add_argument("--maps", required=True)
-    ob.add_argument("--output", required=True)
-    ob.add_argument("--catalog", help="also write a mock shear catalog here (HDF5)")
-    ob.add_argument("--catalog-fits", help="... and as a FITS table here")
-    ob.add_argument("--fits", help="also write the noisy convergence maps as FITS images here")
+    ob.add_argument("--maps", nargs="+", required=True, help="one trace file per realisation")
+    ob.add_argument("--output", nargs="+", required=True)
+    ob.add_argument("--catalog", nargs="+", help="also write a mock shear catalog here (HDF5)")
+    ob.add_argument("--catalog-fits", nargs="+", help="... and as a FITS table here")
+    ob.add_argument("--fits", nargs="+", help="also write the noisy convergence maps as FITS images here")
 
     me = sub.add_parser("measure", help="measure the configured statistics on one observed-map file")
     me.add_argument("--settings", required=True)
-    me.add_argument("--maps", required=True)
-    me.add_argument("--output", required=True)
+    me.add_argument("--maps", nargs="+", required=True, help="one observed-map file per realisation")
+    me.add_argument("--output", nargs="+", required=True)
+    st = sub.add_parser("stack", help="every realisation of one model -> one table with mean and covariance")
+    st.add_argument("--model", required=True)
+    st.add_argument("--statistics", nargs="+", required=True, help="statistics files r<realisation>.h5")
+    st.add_argument("--output", required=True)
+
+    fo = sub.add_parser("forecast", help="Fisher forecasts per combination of statistics")
+    fo.add_argument("--settings", required=True)
+    fo.add_argument("--stacks", nargs="+", required=True, help="stack files <model>.h5")
+    fo.add_argument("--output", required=True, help="forecast HDF5 file")
+    fo.add_argument("--table", required=True, help="CSV error table")
+    fo.add_argument("--html", required=True, help="HTML error table")
+    fo.add_argument("--diagnostics", required=True, help="CSV half-sample diagnostics")
+    fo.add_argument("--ellipses", required=True, help="PNG confidence ellipses")
+    fo.add_argument("--degradation", help="CSV of sigma with / without nuisance parameters")
+
+    pm = sub.add_parser("plot-maps", help="example convergence maps of every model (PNG)")
+    pm.add_argument("--settings", required=True)
+    pm.add_argument("--maps", nargs="+", required=True, help="one trace file per model")
+    pm.add_argument("--observed", nargs="+", required=True, help="one observed file per model, same order")
+    pm.add_argument("--output", required=True)
+
+    ps = sub.add_parser("plot-statistics", help="each statistic as a ratio to a reference model (PNG)")
+    ps.add_argument("--settings", required=True)
+    ps.add_argument("--stacks", nargs="+", required=True)
+    ps.add_argument("--output", nargs="+", required=True, help="one PNG per statistic of --settings")
+
+    pv = sub.add_parser("provenance", help="configuration and software versions of the run (HTML)")
+    pv.add_argument("--config", required=True, help="the run's configuration as JSON")
+    pv.add_argument("--output", required=True)
     return p
 
 
 COMMANDS = {"simulate": cmd_simulate, "slice": cmd_slice, "trace": cmd_trace, "observe": cmd_observe,
-            "measure": cmd_measure}
+            "measure": cmd_measure, "stack": cmd_stack, "forecast": cmd_forecast, "plot-maps": cmd_plot_maps,
+            "plot-statistics": cmd_plot_statistics, "provenance": cmd_provenance}
+
+#: Commands that take several realisations at once: the per-realisation options, one value each.
+BATCHED = {
+    "trace": ("realization", "output"),
+    "observe": ("realization", "maps", "output", "catalog", "catalog_fits", "fits"),
+    "measure": ("maps", "output"),
+}
+
+
+def per_realization(args: argparse.Namespace) -> list[argparse.Namespace]:
+    """Split a batched command into one namespace per realisation (start-up is paid once)."""
+    keys = [k for k in BATCHED.get(args.command, ()) if getattr(args, k, None) is not None]
+    if not keys:
+        return [args]
+    n = len(args.output)
+    for k in keys:
+        if len(getattr(args, k)) != n:
+            raise RaytraceError(f"--{k.replace('_', '-')}: {len(getattr(args, k))} values for {n} outputs")
+    return [argparse.Namespace(**{**vars(args), **{k: getattr(args, k)[i] for k in keys}}) for i in range(n)]
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -284,7 +387,11 @@ def main(argv: Sequence[str] | None = None) -> int:
             cmd_validate(args)
             return 0
         log = Log(args.command)
-        COMMANDS[args.command](args, log)
+        items = per_realization(args)
+        for i, item in enumerate(items):
+            if len(items) > 1:
+                log(f"item {i + 1}/{len(items)}: {item.output}")
+            COMMANDS[args.command](item, log)
         log.finish()
         return 0
     except RaytraceError as exc:

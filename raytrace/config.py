@@ -79,6 +79,8 @@ def validate(config: Mapping[str, Any]) -> dict:
     cfg = copy.deepcopy(dict(config))
     _set_defaults(cfg, sch, sch)
     _check_semantics(cfg)
+    _check_realizations(cfg)
+    _check_forecast(cfg)
     return cfg
 
 
@@ -233,3 +235,187 @@ def _check_systematics(cfg: dict) -> None:
     for name in systematics.get("variant_models") or []:
         if name not in cfg["suite"]["models"]:
             raise RaytraceError(f"{KEY}.variant_models: {name!r} is not one of suite.models")
+
+
+# ------------------------------------------------------------ realisations, forecast
+def map_labels(cfg: Mapping) -> list[str]:
+    """Labels of the maps of a run: ``z0.50`` ... per source redshift, then ``bin0`` ..."""
+    labels = [f"z{float(z):.2f}" for z in cfg["maps"]["source_redshifts"]]
+    sources = cfg.get("survey", {}).get("sources")
+    if sources:
+        bins = sources.get("bins") or {}
+        n_bins = len(bins["edges"]) - 1 if "edges" in bins else int(bins.get("n_bins", 1))
+        labels += [f"bin{i}" for i in range(n_bins)]
+    return labels
+
+
+def fiducial_model(cfg: Mapping) -> str:
+    """The model at the centre of the forecast (and of the report's ratios)."""
+    fc = cfg.get("forecast")
+    if fc:
+        return fc["fiducial"]
+    return "fiducial" if "fiducial" in cfg["suite"]["models"] else model_names(cfg)[0]
+
+
+def realization_counts(cfg: Mapping) -> dict[str, int]:
+    """Realisations per model: ``maps.realizations``, the fiducial possibly more."""
+    n = int(cfg["maps"]["realizations"])
+    counts = {m: n for m in model_names(cfg)}
+    fc = cfg.get("forecast")
+    if fc and fc.get("covariance_realizations"):
+        counts[fc["fiducial"]] = max(n, int(fc["covariance_realizations"]))
+    return counts
+
+
+def realizations_per_job(cfg: Mapping) -> int:
+    """Realisations handled by one trace, observe or measure job (1, 10 or 100)."""
+    value = cfg["maps"].get("realizations_per_job", "auto")
+    if value == "auto":
+        return 10 if all(c % 10 == 0 for c in realization_counts(cfg).values()) else 1
+    return int(value)
+
+
+def _check_realizations(cfg: dict) -> None:
+    per_job = realizations_per_job(cfg)
+    for model, count in realization_counts(cfg).items():
+        if count % per_job:
+            key = "forecast.covariance_realizations" if count != cfg["maps"]["realizations"] else "maps.realizations"
+            raise RaytraceError(
+                f"{key}: {count} realisations of {model} are not a multiple of maps.realizations_per_job "
+                f"({per_job}); change the count or set realizations_per_job: 1"
+            )
+
+
+def forecast_steps(cfg: Mapping) -> dict[str, dict[str, tuple[str, float]]]:
+    """Finite-difference steps of ``forecast.parameters``: parameter -> {"minus"/"plus": (model, value)}."""
+    fc = cfg["forecast"]
+    fid = model_parameters(cfg, fc["fiducial"])
+    steps = {}
+    for param, models in fc["parameters"].items():
+        key = f"forecast.parameters.{param}"
+        if param not in PARAMETER_NAMES:
+            raise RaytraceError(f"{key}: unknown parameter (known: {', '.join(PARAMETER_NAMES)})")
+        if len(set(models)) != len(models):
+            raise RaytraceError(f"{key}: the same model is given twice")
+        spec = {}
+        for model in models:
+            if model not in cfg["suite"]["models"]:
+                raise RaytraceError(f"{key}: no model {model!r} in suite.models")
+            values = model_parameters(cfg, model)
+            others = [q for q in PARAMETER_NAMES if q != param and not np.isclose(values[q], fid[q], rtol=1e-12, atol=0)]
+            if others:
+                raise RaytraceError(
+                    f"{key}: model {model!r} also differs from the fiducial in {', '.join(others)}; "
+                    "derivatives need one-at-a-time variations"
+                )
+            if values[param] == fid[param]:
+                raise RaytraceError(f"{key}: model {model!r} has the fiducial value of {param}")
+            side = "plus" if values[param] > fid[param] else "minus"
+            if side in spec:
+                raise RaytraceError(f"{key}: both models lie on the same side of the fiducial")
+            spec[side] = (model, values[param])
+        steps[param] = spec
+    return steps
+
+
+def _check_forecast(cfg: dict) -> None:
+    fc = cfg.get("forecast")
+    report = cfg.get("report", {})
+    labels = map_labels(cfg)
+    models = cfg["suite"]["models"]
+    if report.get("reference") is not None and report["reference"] not in models:
+        raise RaytraceError(f"report.reference: no model {report['reference']!r} in suite.models")
+    if report.get("map") is not None and report["map"] not in labels:
+        raise RaytraceError(f"report.map: no map {report['map']!r} (maps: {', '.join(labels)})")
+    if not fc:
+        return
+    if fc["fiducial"] not in models:
+        raise RaytraceError(f"forecast.fiducial: no model {fc['fiducial']!r} in suite.models")
+    forecast_steps(cfg)
+    known = set(cfg.get("statistics", {}))
+    for i, combo in enumerate(fc["combinations"]):
+        names = [combo] if isinstance(combo, str) else list(combo)
+        for name in names:
+            if name != "all" and name not in known:
+                raise RaytraceError(
+                    f"forecast.combinations[{i}]: {name!r} is not a configured statistic (statistics: {', '.join(sorted(known))})"
+                )
+    for label in fc.get("maps") or []:
+        if label not in labels:
+            raise RaytraceError(f"forecast.maps: no map {label!r} (maps: {', '.join(labels)})")
+    for name in fc.get("scale_cuts") or {}:
+        if name not in known:
+            raise RaytraceError(f"forecast.scale_cuts.{name}: not a configured statistic")
+    priors = fc.get("priors") or {}
+    for name in priors.get("sigma") or {}:
+        if name not in fc["parameters"]:
+            raise RaytraceError(f"forecast.priors.sigma.{name}: not a forecast parameter")
+    if priors.get("fisher") is not None and not Path(priors["fisher"]).is_file():
+        raise RaytraceError(f"forecast.priors.fisher: {priors['fisher']}: file not found")
+    nuisance_parameters(cfg)
+
+
+# ------------------------------------------------------------------ nuisance parameters
+def nuisance_parameters(cfg: Mapping) -> dict[str, dict]:
+    """Nuisance parameters of ``forecast.nuisance``, each with its two observe variants.
+
+    Returns name -> ``{"fiducial": value, "prior_sigma": sigma or None,
+    "minus": (variant, value), "plus": (variant, value), "variants": {variant: nuisance values}}``.
+    Names: ``m_bin<i>`` (multiplicative shear bias of bin i), ``dz_bin<i>`` (mean redshift
+    shift of bin i; the step is ``survey.systematics.photoz.derivative_step``, which the
+    trace stage traces), ``A_IA`` (alignment amplitude). The variants change one value and
+    keep every other nuisance value nominal, so the derivatives are one at a time.
+    """
+    from .systematics import KEY, per_bin
+
+    fc = cfg.get("forecast") or {}
+    spec = fc.get("nuisance") or {}
+    if not spec:
+        return {}
+    systematics = cfg.get("survey", {}).get("systematics")
+    if systematics is None:
+        raise RaytraceError("forecast.nuisance: needs survey.systematics (the nominal nuisance values)")
+    n_bins = configured_bin_count(cfg.get("survey", {}).get("sources"))
+    out: dict[str, dict] = {}
+
+    def add(name, fiducial, step, values_of, prior):
+        lo, hi = f"nuisance_{name}_minus", f"nuisance_{name}_plus"
+        out[name] = {"fiducial": float(fiducial), "prior_sigma": prior,
+                     "minus": (lo, float(fiducial - step)), "plus": (hi, float(fiducial + step)),
+                     "variants": {lo: values_of(-step), hi: values_of(+step)}}
+
+    if "shear_bias" in spec:
+        s = spec["shear_bias"]
+        m0 = per_bin((systematics.get("shear_bias") or {}).get("m"), n_bins, f"{KEY}.shear_bias.m", default=0.0)
+        for i in range(n_bins):
+            def m_values(d, i=i):
+                m = [float(x) for x in m0]
+                m[i] += d
+                return {"shear_bias": {"m": m}}
+            add(f"m_bin{i}", m0[i], float(s["step"]), m_values, s.get("prior_sigma"))
+    if "photoz_shift" in spec:
+        s = spec["photoz_shift"]
+        pz = systematics.get("photoz") or {}
+        step = pz.get("derivative_step")
+        if step is None:
+            raise RaytraceError("forecast.nuisance.photoz_shift: needs survey.systematics.photoz.derivative_step "
+                                "(the trace stage traces the shifted bins)")
+        shift0 = per_bin(pz.get("shift"), n_bins, f"{KEY}.photoz.shift", default=0.0)
+        off0 = per_bin(pz.get("offset"), n_bins, f"{KEY}.photoz.offset", default=0.0)
+        if np.any(off0 != 0):
+            raise RaytraceError("forecast.nuisance.photoz_shift: the nominal survey.systematics.photoz.offset must be 0")
+        for i in range(n_bins):
+            def dz_values(d, i=i):
+                off = [0.0] * n_bins
+                off[i] = d
+                return {"photoz": {"offset": off}}
+            add(f"dz_bin{i}", shift0[i], float(step), dz_values, s.get("prior_sigma"))
+    if "alignment" in spec:
+        s = spec["alignment"]
+        ia = systematics.get("intrinsic_alignment")
+        if ia is None:
+            raise RaytraceError("forecast.nuisance.alignment: needs a survey.systematics.intrinsic_alignment section")
+        a0 = float(ia.get("amplitude", 0.0))
+        add("A_IA", a0, float(s["step"]),
+            lambda d: {"intrinsic_alignment": {"amplitude": a0 + d}}, s.get("prior_sigma"))
+    return out

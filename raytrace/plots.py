@@ -10,7 +10,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from .errors import RaytraceError
-from .forecast import DELTA_CHI2_2D, ellipse_parameters, pair_covariance
+from .forecast import DELTA_CHI2_2D, pair_covariance
 
 
 def _as_covariances(results: Any, parameters: Sequence[str]) -> list[tuple[str, np.ndarray]]:
@@ -38,6 +38,29 @@ def _as_covariances(results: Any, parameters: Sequence[str]) -> list[tuple[str, 
     return out
 
 
+def ellipse_curve(cov2: np.ndarray, delta_chi2: float, n: int = 200) -> tuple[np.ndarray, np.ndarray]:
+    r"""Points of the contour :math:`\delta\theta^T C^{-1} \delta\theta = \Delta\chi^2` around the origin.
+
+    The contour is :math:`\sqrt{\Delta\chi^2}\,L(\cos t, \sin t)^T` with :math:`C = LL^T`
+    (Cholesky). Unlike the semi-axes of :func:`raytrace.forecast.ellipse_parameters`
+    this does not depend on the relative units of the two parameters, so pairs such as
+    (:math:`A_s`, :math:`\sum m_\nu`) with variances 20 orders of magnitude apart are drawn
+    without round-off.
+    """
+    c = np.asarray(cov2, dtype=float)
+    s = np.sqrt(np.diag(c))
+    if c.shape != (2, 2) or not np.all(np.isfinite(c)) or np.any(s <= 0):
+        raise RaytraceError("ellipse: need a finite 2x2 covariance with positive variances")
+    r = c / np.outer(s, s)
+    try:
+        chol = np.linalg.cholesky(r)
+    except np.linalg.LinAlgError:
+        raise RaytraceError("ellipse: the 2x2 parameter covariance is not positive definite") from None
+    t = np.linspace(0.0, 2.0 * np.pi, n)
+    xy = math.sqrt(delta_chi2) * (chol @ np.vstack([np.cos(t), np.sin(t)]))
+    return s[0] * xy[0], s[1] * xy[1]
+
+
 def plot_fisher_ellipses(
     results: Any,
     parameters: Sequence[str],
@@ -55,7 +78,7 @@ def plot_fisher_ellipses(
     results : sequence of :class:`raytrace.forecast.ForecastResult` (anything with
         ``name``, ``parameters`` and ``covariance``), or a mapping combination name ->
         (n, n) parameter covariance in the order of ``parameters``.
-    parameters : the parameters to show (at least two).
+    parameters : the parameters to show (with one, only its 1-D Gaussians are drawn).
     fiducial_values : centre of the ellipses, by name or in the order of ``parameters``.
     path : PNG file to write.
     levels : :math:`\Delta\chi^2` of the contours; default 2.30 and 6.18 (1 and 2
@@ -71,7 +94,7 @@ def plot_fisher_ellipses(
     Notes
     -----
     Panel (row i, column j < i) shows the ellipses of parameters j (x) and i (y) from
-    the marginalised 2x2 covariance (:func:`raytrace.forecast.ellipse_parameters`);
+    the marginalised 2x2 covariance (:func:`ellipse_curve`);
     diagonal panels show the marginalised 1-D Gaussian
     :math:`\exp[-(\theta-\theta_0)^2/2\sigma^2]` of each combination.
     """
@@ -79,14 +102,12 @@ def plot_fisher_ellipses(
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
-    from matplotlib.patches import Ellipse as EllipsePatch
-
     from .hdf5 import atomic_file
 
     parameters = [str(q) for q in parameters]
     n = len(parameters)
-    if n < 2:
-        raise RaytraceError("forecast.plot.parameters: at least two parameters are needed for ellipses")
+    if n < 1:
+        raise RaytraceError("plot_fisher_ellipses: no parameters to plot")
     if isinstance(fiducial_values, Mapping):
         missing = [q for q in parameters if q not in fiducial_values]
         if missing:
@@ -126,19 +147,10 @@ def plot_fisher_ellipses(
                 ax.set_yticks([])
             else:
                 for k, (name, cov) in enumerate(combos):
-                    for m, e in enumerate(ellipse_parameters(pair_covariance(cov, j, i), levels)):
-                        ax.add_patch(
-                            EllipsePatch(
-                                (centre[j], centre[i]),
-                                2.0 * e.semi_major,
-                                2.0 * e.semi_minor,
-                                angle=math.degrees(e.angle),
-                                fill=False,
-                                edgecolor=colours[k % len(colours)],
-                                lw=1.2,
-                                ls="-" if m == 0 else "--",
-                            )
-                        )
+                    for m, level in enumerate(levels):
+                        x, y = ellipse_curve(pair_covariance(cov, j, i), float(level))
+                        ax.plot(centre[j] + x, centre[i] + y, color=colours[k % len(colours)], lw=1.2,
+                                ls="-" if m == 0 else "--")
                 ax.plot(centre[j], centre[i], "k+", ms=5)
                 ax.set_ylim(centre[i] - half_width[i], centre[i] + half_width[i])
                 if j == 0:
@@ -151,8 +163,16 @@ def plot_fisher_ellipses(
                 ax.set_xticklabels([])
             ax.tick_params(labelsize=7)
     handles = [plt.Line2D([], [], color=colours[k % len(colours)], lw=1.5) for k in range(len(combos))]
-    fig.legend(handles, [name for name, _ in combos], loc="upper right", fontsize=8, frameon=False)
+    names = [name for name, _ in combos]
     fig.tight_layout()
+    if n >= 2:  # in the empty upper triangle
+        spare = axes[0, n - 1]
+        spare.set_visible(True)
+        spare.axis("off")
+        spare.legend(handles, names, loc="upper right", fontsize=8, frameon=False)
+    else:
+        fig.subplots_adjust(bottom=0.35)
+        fig.legend(handles, names, loc="lower center", fontsize=8, frameon=False)
 
     final = Path(path)
     try:

@@ -235,6 +235,30 @@ def trace_settings(systematics: Mapping | None) -> dict | None:
     return out or None
 
 
+def nominal_trace_settings(systematics: Mapping | None, traced: Mapping | None) -> dict | None:
+    """``traced`` (from :func:`trace_settings`) without what only nuisance variants use.
+
+    The derivative-step bins are dropped when every nominal photo-z offset is zero, and the
+    alignment maps when the nominal amplitude is zero: maps no nominal observation reads.
+    The workflow traces them only for the realisations the variants observe.
+    """
+    if not traced:
+        return None
+    out = {k: dict(v) for k, v in traced.items()}
+    pz = _section(systematics, "photoz")
+    if "photoz" in out:
+        if _all_equal(pz.get("offset", 0.0), 0.0):
+            out["photoz"].pop("derivative_step", None)
+        if _all_equal(pz.get("stretch_offset", 0.0), 0.0):
+            out["photoz"].pop("stretch_derivative_step", None)
+        if not out["photoz"]:
+            del out["photoz"]
+    ia = _section(systematics, "intrinsic_alignment")
+    if "intrinsic_alignment" in out and float(ia.get("amplitude", 0.0)) == 0.0:
+        del out["intrinsic_alignment"]
+    return out or None
+
+
 def _all_equal(value: Any, neutral: float | None) -> bool:
     if neutral is None:
         return False

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import copy
 import json
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -58,15 +59,27 @@ def edited(path_keys, value):
         (("survey", "smoothing", "kernel"), "boxcar", "survey.smoothing.kernel"),
         (("survey", "sources", "z_max"), 2.0, "survey.sources.z_max"),
         (("survey", "noise", "sigma_e"), -0.1, "survey.noise.sigma_e"),
+        (("forecast", "fiducial"), "nowhere", "forecast.fiducial: no model 'nowhere'"),
+        (("forecast", "parameters", "m_nu_eV"), ["m_nu_zero", "A_s_high"], "forecast.parameters.m_nu_eV: model 'A_s_high' also differs"),
+        (("forecast", "parameters", "m_nu_eV"), ["m_nu_high", "m_nu_high"], "forecast.parameters.m_nu_eV: the same model"),
+        (("forecast", "parameters", "w0"), ["m_nu_high"], "forecast.parameters.w0: unknown parameter"),
+        (("forecast", "parameters", "A_s"), ["ghost"], "forecast.parameters.A_s: no model 'ghost'"),
+        (("forecast", "combinations"), [["peaks", "shear_ratio"]], "forecast.combinations[0]: 'shear_ratio'"),
+        (("forecast", "maps"), ["bin3"], "forecast.maps: no map 'bin3'"),
+        (("maps", "realizations_per_job"), 100, "maps.realizations: 10 realisations of A_s_high are not a multiple"),
+        (("forecast", "priors", "sigma"), {"h": 0.1}, "forecast.priors.sigma.h: not a forecast parameter"),
+        (("forecast", "priors", "fisher"), "no/such.npy", "forecast.priors.fisher: no/such.npy: file not found"),
+        (("maps", "realizations_per_job"), 7, "maps.realizations_per_job"),
+        (("report",), {"map": "bin9"}, "report.map: no map 'bin9'"),
     ],
 )
 def test_config_errors_name_the_key(tmp_path, keys, value, expected):
     path = tmp_path / "bad.yaml"
     path.write_text(yaml.safe_dump(edited(keys, value)))
-    with pytest.raises(RaytraceError, match=expected.replace(".", r"\.")):
+    with pytest.raises(RaytraceError, match=re.escape(expected)):
         rc.load(path)
     line = one_error_line(run("validate", str(path)))
-    assert expected in line and str(path) not in ""  # the key is named on the one line
+    assert expected in line  # the key is named on the one line
 
 
 def test_snakemake_rejects_bad_config_in_one_line(tmp_path):

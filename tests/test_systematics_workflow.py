@@ -115,6 +115,7 @@ def systematics_config() -> dict:
     cfg["survey"]["catalog"] = {"enabled": False}
     cfg["survey"]["fits"] = {"enabled": False}
     cfg["survey"]["systematics"] = copy.deepcopy(SYSTEMATICS)
+    del cfg["forecast"]  # one model: nothing to differentiate
     return cfg
 
 
@@ -154,20 +155,24 @@ def test_second_systematics_run_does_nothing(variant_run):
 
 @pytest.mark.parametrize("change, expected", [
     # a variant's own value: that variant only, never the trace
+    # (every change also redraws the provenance page, which shows the whole configuration)
     (lambda s: s["variants"]["m0_up"]["shear_bias"].update(m=[0.03, 0.0]),
-     {"observe_variant": 1, "measure_variant": 1}),
-    # a new variant: only its observing and measuring
+     {"observe_variant": 1, "measure_variant": 1, "stack_variant": 1, "provenance": 1}),
+    # a new variant: only its observing, measuring and stacking
     (lambda s: s["variants"].update(ia_up={"intrinsic_alignment": {"amplitude": 1.0}}),
-     {"observe_variant": 1, "measure_variant": 1}),
+     {"observe_variant": 1, "measure_variant": 1, "stack_variant": 1, "provenance": 1}),
     # a nominal nuisance value: observing onward and the variants that inherit it (dz1_down sets
     # its own amplitude), no trace
     (lambda s: s["intrinsic_alignment"].update(amplitude=0.2),
-     {"observe": 1, "measure": 1, "observe_variant": 1, "measure_variant": 1}),
+     {"observe": 1, "measure": 1, "stack": 1, "observe_variant": 1, "measure_variant": 1, "stack_variant": 1,
+      "plot_maps": 1, "plot_statistics": 1, "provenance": 1}),
     (lambda s: s.update(convergence_from_shear=True),
-     {"observe": 1, "measure": 1, "observe_variant": 2, "measure_variant": 2}),
+     {"observe": 1, "measure": 1, "stack": 1, "observe_variant": 2, "measure_variant": 2, "stack_variant": 2,
+      "plot_maps": 1, "plot_statistics": 1, "provenance": 1}),
     # what the traced maps depend on: re-trace
     (lambda s: s["intrinsic_alignment"].update(eta=1.0),
-     {"trace": 1, "observe": 1, "measure": 1, "observe_variant": 2, "measure_variant": 2}),
+     {"trace": 1, "observe": 1, "measure": 1, "stack": 1, "observe_variant": 2, "measure_variant": 2,
+      "stack_variant": 2, "plot_maps": 1, "plot_statistics": 1, "provenance": 1}),
 ])
 def test_what_reruns_when_a_systematic_changes(variant_run, change, expected):
     work, cfg = variant_run

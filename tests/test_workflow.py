@@ -20,7 +20,12 @@ def tiny_config() -> dict:
     cfg = yaml.safe_load((ROOT / "config" / "small.yaml").read_text())
     cfg["output"] = "results"
     cfg["suite"]["models"] = {"fiducial": {}, "m_nu_zero": {"m_nu_eV": 0.0}}
-    cfg["maps"]["realizations"] = 1
+    cfg["maps"]["realizations"] = 10  # one job of 10 per model and stage ...
+    cfg["forecast"]["covariance_realizations"] = 20  # ... and two for the fiducial
+    cfg["forecast"]["parameters"] = {"m_nu_eV": ["m_nu_zero"]}  # one-sided
+    cfg["forecast"]["maps"] = ["bin1"]  # a data vector short enough for 20 realisations
+    cfg["forecast"]["priors"] = {"sigma": {"m_nu_eV": 0.5}}
+    cfg["forecast"]["nuisance"] = {"alignment": {"step": 0.5, "prior_sigma": 1.0}}  # two observe variants
     return cfg
 
 
@@ -89,9 +94,54 @@ def test_outputs_exist_with_their_layout(finished_run):
         ra, dec = WCS(hdus[1].header).wcs_pix2world([[31.5, 31.5]], 0)[0]
         assert (ra, dec) == pytest.approx((150.0, 2.0), abs=1e-9)
     # each stage logs its wall time and peak memory
-    log = (work / "logs/trace/fiducial_r0000.log").read_text()
+    log = (work / "logs/trace/fiducial_b000.log").read_text()
     assert "wall time" in log and "peak memory" in log
-    assert (work / "logs/benchmarks/trace/fiducial_r0000.tsv").exists()
+    assert log.count("item ") == 10  # one job traced realisations 0-9
+    assert (work / "logs/benchmarks/trace/fiducial_b000.tsv").exists()
+
+
+def test_stack_and_forecast_products(finished_run):
+    work, cfg = finished_run
+    with h5py.File(work / "results/stacks/fiducial.h5") as f:
+        assert f["values"].shape[0] == 20 and list(f["realizations"][...]) == list(range(20))
+        n = f["values"].shape[1]
+        assert f["covariance"].shape == (n, n)
+        # the bispectrum's empty triangle bins (NaN in every file) are left out
+        assert np.all(np.isfinite(f["values"][...]))
+    with h5py.File(work / "results/stacks/m_nu_zero.h5") as f:
+        assert f["values"].shape[0] == 10
+    rows = (work / "results/forecast/errors.csv").read_text().splitlines()
+    assert rows[0].startswith("parameter,combination")
+    names = list(dict.fromkeys(r.split(",")[1] for r in rows[1:]))
+    base = ["power_spectrum", "peaks", "power_spectrum+peaks"]
+    assert names == base + [f"{b} + prior" for b in base] + [f"{b} + nuisances" for b in base] + [
+        f"{b} + prior + nuisances" for b in base]
+    degradation = (work / "results/forecast/degradation.csv").read_text().splitlines()
+    assert len(degradation) == 1 + 6  # 6 forecasts without nuisances x 1 cosmological parameter
+    assert all(float(r.split(",")[-1]) >= 1 - 1e-9 for r in degradation[1:])  # marginalising never helps
+    with h5py.File(work / "results/forecast/forecast.h5") as f:
+        warnings = f.attrs["warnings"]
+        assert "one-sided" in warnings  # only m_nu_zero exists below the fiducial
+        for name in ("power_spectrum", "peaks", "power_spectrum+peaks"):
+            assert f[f"combinations/{name}/half_derivatives"].shape == (2, 1)
+        # a Gaussian prior of 0.5 eV: the error with it is below both the prior and the data alone
+        alone = f["combinations/power_spectrum/marginalised"][0]
+        both = f["combinations/power_spectrum + prior/marginalised"][0]
+        assert both < min(alone, 0.5)
+        assert both == pytest.approx((alone**-2 + 0.5**-2) ** -0.5, rel=1e-9)  # one parameter: 1/sigma^2 add
+    for name in ("maps.png", "provenance.html") + tuple(f"statistics/{s}.png" for s in cfg["statistics"]):
+        assert (work / "results/report" / name).stat().st_size > 1000, name
+
+
+def test_report_contains_the_figures(finished_run):
+    work, cfg = finished_run
+    proc = snakemake(work, cfg, "--report", "results/report.html")
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    text = (work / "results/report.html").read_text()
+    for name in ("ellipses.png", "errors.html", "degradation.csv", "maps.png", "power_spectrum.png", "peaks.png",
+                 "provenance.html"):
+        assert name in text, name
+    assert "3. Forecast" in text and "Dodelson" in text  # categories and captions
 
 
 def test_second_run_does_nothing(finished_run):
@@ -104,7 +154,8 @@ def test_changing_power_spectrum_bins_reruns_only_measuring(finished_run):
     changed = copy.deepcopy(cfg)
     changed["statistics"]["power_spectrum"]["bins"] = 6
     jobs = planned_jobs(snakemake(work, changed, "-n"))
-    assert jobs == {"measure": 2, "all": 1}, jobs
+    assert jobs == {"measure": 3, "measure_variant": 2, "stack": 2, "stack_variant": 2, "forecast": 1,
+                    "plot_statistics": 1, "provenance": 1, "all": 1}, jobs
 
 
 def test_changing_the_plane_grid_reruns_slicing_onward(finished_run):
@@ -112,7 +163,9 @@ def test_changing_the_plane_grid_reruns_slicing_onward(finished_run):
     changed = copy.deepcopy(cfg)
     changed["planes"]["grid"] = 64
     jobs = planned_jobs(snakemake(work, changed, "-n"))
-    assert jobs == {"slice": 6, "trace": 2, "observe": 2, "measure": 2, "all": 1}, jobs
+    assert jobs == {"slice": 6, "trace": 3, "observe": 3, "measure": 3, "stack": 2, "forecast": 1,
+                    "observe_variant": 2, "measure_variant": 2, "stack_variant": 2,
+                    "plot_maps": 1, "plot_statistics": 1, "provenance": 1, "all": 1}, jobs
 
 
 def test_changing_the_smoothing_reruns_observing_onward(finished_run):
@@ -120,4 +173,6 @@ def test_changing_the_smoothing_reruns_observing_onward(finished_run):
     changed = copy.deepcopy(cfg)
     changed["survey"]["smoothing"]["scales_arcmin"] = [3.0]
     jobs = planned_jobs(snakemake(work, changed, "-n"))
-    assert jobs == {"observe": 2, "measure": 2, "all": 1}, jobs
+    assert jobs == {"observe": 3, "measure": 3, "stack": 2, "forecast": 1, "plot_maps": 1,
+                    "observe_variant": 2, "measure_variant": 2, "stack_variant": 2,
+                    "plot_statistics": 1, "provenance": 1, "all": 1}, jobs

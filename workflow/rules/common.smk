@@ -5,7 +5,16 @@ OUT = config["output"]
 MODELS = rtconfig.model_names(config)
 SNAP_Z = rtconfig.snapshot_redshifts(config)
 SNAP_INDEX = [f"{i:03d}" for i in range(len(SNAP_Z))]
-REALIZATIONS = [f"{r:04d}" for r in range(config["maps"]["realizations"])]
+# realisations per model (the fiducial may have more, for the covariance); one trace,
+# observe or measure job handles a batch of PER_JOB consecutive realisations, named by
+# the leading digits of their four-digit index: batch "003" of 10 is r0030 ... r0039
+COUNTS = rtconfig.realization_counts(config)
+PER_JOB = rtconfig.realizations_per_job(config)
+SUFFIX_DIGITS = len(str(PER_JOB)) - 1
+BATCH_DIGITS = 4 - SUFFIX_DIGITS
+SUFFIXES = [f"{i:0{SUFFIX_DIGITS}d}" if SUFFIX_DIGITS else "" for i in range(PER_JOB)]
+MAP_LABELS = rtconfig.map_labels(config)
+FIDUCIAL = rtconfig.fiducial_model(config)
 # every job runs with the interpreter that runs the workflow
 RAYTRACE = f"{shlex.quote(sys.executable)} -m raytrace"
 
@@ -13,7 +22,7 @@ RAYTRACE = f"{shlex.quote(sys.executable)} -m raytrace"
 wildcard_constraints:
     model="|".join(MODELS),
     index=r"\d{3}",
-    real=r"\d{4}",
+    batch=rf"\d{{{BATCH_DIGITS}}}",
 
 
 def as_json(value):
@@ -29,5 +38,26 @@ def plane_files(model):
     return [f"{OUT}/planes/{model}/snap_{i}.h5" for i in SNAP_INDEX]
 
 
+def batch_outputs(pattern):
+    """The files of one batch: ``pattern`` has ``{batch}`` where the realisation index starts."""
+    return [pattern.replace("{batch}", "{batch}" + s) for s in SUFFIXES]
+
+
+def batch_realizations(wildcards):
+    return " ".join(str(int(wildcards.batch + s)) for s in SUFFIXES)
+
+
+def batches(model):
+    return [f"{b:0{BATCH_DIGITS}d}" for b in range(COUNTS[model] // PER_JOB)]
+
+
+def realization_files(stage, model):
+    return [f"{OUT}/{stage}/{model}/r{r:04d}.h5" for r in range(COUNTS[model])]
+
+
+def quoted(paths):
+    return " ".join(shlex.quote(str(p)) for p in paths)
+
+
 def statistics_files():
-    return expand(f"{OUT}/statistics/{{model}}/r{{real}}.h5", model=MODELS, real=REALIZATIONS)
+    return [f for m in MODELS for f in realization_files("statistics", m)]

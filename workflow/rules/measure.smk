@@ -1,4 +1,4 @@
-# Every configured statistic, at every smoothing scale, on one observed-map file.
+# Every configured statistic, at every smoothing scale, on a batch of observed-map files.
 
 
 def measure_settings():
@@ -7,14 +7,15 @@ def measure_settings():
 
 rule measure:
     input:
-        f"{OUT}/observed/{{model}}/r{{real}}.h5",
+        batch_outputs(f"{OUT}/observed/{{model}}/r{{batch}}.h5"),
     output:
-        f"{OUT}/statistics/{{model}}/r{{real}}.h5",
+        batch_outputs(f"{OUT}/statistics/{{model}}/r{{batch}}.h5"),
     params:
         settings=measure_settings(),
+        outputs=lambda w, output: quoted(output),
     log:
-        "logs/measure/{model}_r{real}.log",
+        "logs/measure/{model}_b{batch}.log",
     benchmark:
-        "logs/benchmarks/measure/{model}_r{real}.tsv"
+        "logs/benchmarks/measure/{model}_b{batch}.tsv"
     shell:
-        "{RAYTRACE} measure --settings {params.settings:q} --maps {input:q} --output {output:q} 2> {log:q}"
+        "{RAYTRACE} measure --settings {params.settings:q} --maps {input:q} --output {params.outputs} 2> {log:q}"

@@ -4,7 +4,11 @@
 def observe_settings(nuisance=None):
     survey = {k: v for k, v in config["survey"].items() if k != "sources"}  # sources: trace
     systematics = rtsystematics.observe_settings(survey.pop("systematics", None), values=nuisance)
-    if systematics is not None:  # without the variants; with a variant's nuisance values if given
+    # without the variants; with a variant's nuisance values if given. Neutral values (no
+    # bias, nominal n(z), no alignment) observe exactly as no systematics, so they are left
+    # out and adding a systematics section for variants does not rerun the nominal stages.
+    n_bins = rtconfig.configured_bin_count(config["survey"].get("sources"))
+    if systematics is not None and not rtsystematics.Nuisance.from_settings(systematics, n_bins).is_null():
         survey["systematics"] = systematics
     return as_json({"survey": survey, "seed": config["seed"]})
 
@@ -14,31 +18,33 @@ FITS = config["survey"].get("fits", {}).get("enabled", False)
 
 
 def observe_extra_args(wildcards, output):
-    args = []
+    args = ""
     if CATALOG:
-        args += ["--catalog", output.catalog, "--catalog-fits", output.catalog_fits]
+        args += f" --catalog {quoted(output.catalog)} --catalog-fits {quoted(output.catalog_fits)}"
     if FITS:
-        args += ["--fits", output.fits]
-    return " ".join(shlex.quote(a) for a in args)
+        args += f" --fits {quoted(output.fits)}"
+    return args
 
 
 rule observe:
     input:
-        f"{OUT}/maps/{{model}}/r{{real}}.h5",
+        batch_outputs(f"{OUT}/maps/{{model}}/r{{batch}}.h5"),
     output:
-        observed=f"{OUT}/observed/{{model}}/r{{real}}.h5",
-        **({"catalog": f"{OUT}/catalogs/{{model}}/r{{real}}.h5"} if CATALOG else {}),
-        **({"catalog_fits": f"{OUT}/catalogs/{{model}}/r{{real}}.fits"} if CATALOG else {}),
-        **({"fits": f"{OUT}/fits/{{model}}/r{{real}}_kappa.fits"} if FITS else {}),
+        observed=batch_outputs(f"{OUT}/observed/{{model}}/r{{batch}}.h5"),
+        **({"catalog": batch_outputs(f"{OUT}/catalogs/{{model}}/r{{batch}}.h5")} if CATALOG else {}),
+        **({"catalog_fits": batch_outputs(f"{OUT}/catalogs/{{model}}/r{{batch}}.fits")} if CATALOG else {}),
+        **({"fits": batch_outputs(f"{OUT}/fits/{{model}}/r{{batch}}_kappa.fits")} if FITS else {}),
     params:
         settings=observe_settings(),
         extra=observe_extra_args,
+        realizations=batch_realizations,
+        outputs=lambda w, output: quoted(output.observed),
     log:
-        "logs/observe/{model}_r{real}.log",
+        "logs/observe/{model}_b{batch}.log",
     benchmark:
-        "logs/benchmarks/observe/{model}_r{real}.tsv"
+        "logs/benchmarks/observe/{model}_b{batch}.tsv"
     resources:
         mem_mb=lambda w: 300 + config["maps"]["pixels"] ** 2 * 8 * 12 * (len(config["maps"]["source_redshifts"]) + 4) // 2**20,
     shell:
-        "{RAYTRACE} observe --realization {wildcards.real} --settings {params.settings:q} "
-        "--maps {input:q} --output {output.observed:q} {params.extra} 2> {log:q}"
+        "{RAYTRACE} observe --realization {params.realizations} --settings {params.settings:q} "
+        "--maps {input:q} --output {params.outputs}{params.extra} 2> {log:q}"
