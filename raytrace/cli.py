@@ -12,6 +12,7 @@ import argparse
 import json
 import os
 import resource
+import socket
 import sys
 import time
 from pathlib import Path
@@ -31,8 +32,12 @@ class Log:
         print(f"[{self.stage} {time.perf_counter() - self.t0:7.1f} s] {message}", file=sys.stderr, flush=True)
 
     def finish(self) -> None:
+        from . import __version__
+
         peak_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
         self(f"done: wall time {time.perf_counter() - self.t0:.2f} s, peak memory {peak_kb / 1024:.1f} MiB")
+        # which package and machine ran the job (a cluster job may see another installation)
+        self(f"raytrace {__version__} from {Path(__file__).resolve().parent} on {socket.gethostname()}")
 
 
 def _settings(text: str) -> dict:

@@ -1,16 +1,22 @@
 """Atomic HDF5 output and provenance attributes shared by every stage.
 
-Every file a stage produces is written to ``<name>.tmp`` first, flushed and fsynced,
-then renamed over the final name. A killed job therefore leaves either nothing or a
-``.tmp`` file, never a file under the final name that looks complete but is not.
+Every file a stage produces is written to ``<name>.tmp.<host>.<pid>`` first, flushed and
+fsynced, then renamed over the final name. A killed job therefore leaves either nothing or
+a ``.tmp`` file, never a file under the final name that looks complete but is not. The
+temporary name is the writer's own, so two jobs writing the same file at once (a job left
+running by a killed Snakemake, and its rerun) never write into one temporary file: each
+rename puts a complete file in place. A writer removes the temporary files of the same name
+left by processes of its host that are no longer running.
 """
 
 from __future__ import annotations
 
 import contextlib
+import glob
 import hashlib
 import json
 import os
+import socket
 from pathlib import Path
 from typing import Any, Iterator, Mapping, Sequence
 
@@ -31,12 +37,50 @@ def file_checksum(path: str | os.PathLike, *, max_bytes: int = 1 << 20) -> str:
     return h.hexdigest()[:16]
 
 
+def _host() -> str:
+    return socket.gethostname().split(".")[0].replace("/", "_") or "host"
+
+
+def _running(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # another user's process
+        return True
+    return True
+
+
+def remove_stale_temporaries(final: Path) -> list[Path]:
+    """Remove ``final``'s temporary files left by dead processes of this host; return them."""
+    removed = []
+    host = _host()
+    for tmp in final.parent.glob(glob.escape(final.name) + ".tmp*"):
+        suffix = tmp.name[len(final.name):]
+        if suffix == ".tmp":  # the single temporary name of earlier versions
+            stale = True
+        else:
+            owner, _, pid = suffix[len(".tmp."):].rpartition(".")
+            stale = owner == host and pid.isdigit() and not _running(int(pid))
+        if stale:
+            with contextlib.suppress(FileNotFoundError):
+                tmp.unlink()
+                removed.append(tmp)
+    return removed
+
+
+def temporary_path(final: Path) -> Path:
+    """The temporary name this process writes ``final`` under."""
+    return final.with_name(f"{final.name}.tmp.{_host()}.{os.getpid()}")
+
+
 @contextlib.contextmanager
 def atomic_file(path: str | os.PathLike) -> Iterator[Path]:
     """Yield a temporary path beside ``path``; rename it to ``path`` only on success."""
     final = Path(path)
     final.parent.mkdir(parents=True, exist_ok=True)
-    tmp = final.with_name(final.name + ".tmp")
+    remove_stale_temporaries(final)
+    tmp = temporary_path(final)
     if tmp.exists():
         tmp.unlink()
     try:

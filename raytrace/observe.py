@@ -10,9 +10,10 @@ Noise convention: ``survey.noise.sigma_e`` is the ellipticity dispersion *per co
 the per-pixel rms of each shear component and of the convergence is
 ``sigma_e / sqrt(n_gal * A_pix)``, with ``n_gal`` the galaxy density of that map (the whole
 sample for a single source redshift, the bin's share of it for a tomographic bin). Noise is
-seeded by (seed, realisation, map index), never by model, so every model of a realisation
-gets the same noise (paired). The mask is a property of the survey: the same in every
-realisation and model.
+seeded by (noise seed, realisation, map index), never by model, so every model of a
+realisation gets the same noise (paired); the noise seed (``survey.noise.seed``, by default
+the master seed) also draws the catalog galaxies. The mask is a property of the survey, drawn
+from the master seed: the same in every realisation and model, whatever the noise seed.
 
 Layout of the observed file (arrays [map, iy, ix]; ``map_labels`` names each map):
 ``kappa``, ``gamma1``, ``gamma2`` (noisy, masked), ``kappa_smoothed`` [scale, map, iy, ix],
@@ -230,7 +231,8 @@ def observe(
 
     ``settings`` is the ``survey`` section without ``sources`` (which the trace stage used).
     ``nuisance`` gives the systematics explicitly; by default they come from
-    ``settings["systematics"]`` (none when absent).
+    ``settings["systematics"]`` (none when absent). ``seed`` is the master seed: it draws the
+    mask, and the noise and catalogs unless ``settings["noise"]["seed"]`` is given.
     """
     traced = read_traced(maps_path)
     if nuisance is None:
@@ -242,6 +244,7 @@ def observe(
     survey.check_flat_sky(field_deg)
     mask, parts = survey.build_mask(settings.get("mask"), n_pix, field_deg, seed=seed, base_dir=base_dir)
     noise = dict(settings.get("noise") or {})
+    noise_seed = int(noise.get("seed", seed))
     n_total = float(noise.get("galaxies_per_arcmin2", 30.0))
     densities = n_total * maps.density_fraction
     smooth = dict(settings.get("smoothing") or {})
@@ -253,7 +256,7 @@ def observe(
     sigma_s = np.zeros((len(scales), n_maps))
     for b in range(n_maps):
         if not from_shear:
-            observed = survey.observe_map(maps.kappa[b], field_deg, settings, mask=mask, seed=seed,
+            observed = survey.observe_map(maps.kappa[b], field_deg, settings, mask=mask, seed=noise_seed,
                                           realisation=realization, bin_index=b, galaxies_per_arcmin2=densities[b])
             noisy["kappa"][b] = observed.noisy
             smoothed[:, b] = observed.smoothed
@@ -263,7 +266,7 @@ def observe(
             value = getattr(maps, comp)[b].copy()
             if noise.get("enabled", True):
                 value += survey.shape_noise_maps(
-                    n_pix, field_deg, float(noise.get("sigma_e", 0.26)), densities[b], seed=seed,
+                    n_pix, field_deg, float(noise.get("sigma_e", 0.26)), densities[b], seed=noise_seed,
                     realisation=realization, bin_index=b, components=(comp,))[comp]
             noisy[comp][b] = value * mask
         if from_shear:
@@ -294,6 +297,7 @@ def observe(
         f.attrs["map_labels"] = json.dumps(maps.labels)
         f.attrs["galaxies_per_arcmin2"] = densities
         f.attrs["realization"] = int(realization)
+        f.attrs["noise_seed"] = noise_seed
         f.attrs["nuisance"] = nuisance_json(nuisance)
     log(f"valid fraction {mask.mean():.4f}; written {output}")
     if fits_path is not None:
@@ -303,7 +307,7 @@ def observe(
                                       dec_deg=float(fits.get("dec_deg", 0.0)), z_source=z_per_map,
                                       labels=[label.upper() for label in maps.labels])
     if catalog_paths is not None:
-        write_catalogs(traced, settings, mask, seed, realization, catalog_paths, log, nuisance=nuisance,
+        write_catalogs(traced, settings, mask, noise_seed, realization, catalog_paths, log, nuisance=nuisance,
                        path=maps_path)
 
 

@@ -1,7 +1,8 @@
-"""Shared fixtures: a mid-size demo suite generated once per test session."""
+"""Shared fixtures: a mid-size demo suite, and the tiny workflow run, each made once per session."""
 
 from __future__ import annotations
 
+import time
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -69,3 +70,26 @@ def suite(tmp_path_factory) -> Suite:
             write_planes(f, p)
         planes.append(out)
     return Suite(cosmo, box, n, zs, snaps, planes, thickness, grid)
+
+
+class FinishedRun(tuple):
+    """(workdir, config) of a finished workflow run, and its wall time in seconds."""
+
+    def __new__(cls, work: Path, cfg: dict, wall_s: float):
+        run = super().__new__(cls, (work, cfg))
+        run.wall_s = wall_s
+        return run
+
+
+@pytest.fixture(scope="session")
+def finished_run(tmp_path_factory) -> FinishedRun:
+    """The tiny configuration run once with the laptop profile: the reference that reruns,
+    the SLURM run and the killed-and-resumed run are checked against."""
+    from workflow_helpers import snakemake, tiny_config
+
+    work = tmp_path_factory.mktemp("workflow")
+    cfg = tiny_config()
+    t0 = time.perf_counter()
+    proc = snakemake(work, cfg)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    return FinishedRun(work, cfg, time.perf_counter() - t0)

@@ -3,65 +3,14 @@
 from __future__ import annotations
 
 import copy
-import re
-import subprocess
-import sys
-from pathlib import Path
 
 import h5py
 import numpy as np
 import pytest
-import yaml
 
-ROOT = Path(__file__).resolve().parents[1]
+from workflow_helpers import planned_jobs, snakemake, tiny_config  # noqa: F401 (other modules import them from here)
 
-
-def tiny_config() -> dict:
-    cfg = yaml.safe_load((ROOT / "config" / "small.yaml").read_text())
-    cfg["output"] = "results"
-    cfg["suite"]["models"] = {"fiducial": {}, "m_nu_zero": {"m_nu_eV": 0.0}}
-    cfg["maps"]["realizations"] = 10  # one job of 10 per model and stage ...
-    cfg["forecast"]["covariance_realizations"] = 20  # ... and two for the fiducial
-    cfg["forecast"]["parameters"] = {"m_nu_eV": ["m_nu_zero"]}  # one-sided
-    cfg["forecast"]["maps"] = ["bin1"]  # a data vector short enough for 20 realisations
-    cfg["forecast"]["priors"] = {"sigma": {"m_nu_eV": 0.5}}
-    cfg["forecast"]["nuisance"] = {"alignment": {"step": 0.5, "prior_sigma": 1.0}}  # two observe variants
-    return cfg
-
-
-def snakemake(workdir: Path, cfg: dict, *extra: str) -> subprocess.CompletedProcess:
-    path = workdir / "config.yaml"
-    path.write_text(yaml.safe_dump(cfg))
-    return subprocess.run(
-        [sys.executable, "-m", "snakemake", "-s", str(ROOT / "Snakefile"), "-d", str(workdir),
-         "--profile", str(ROOT / "profiles" / "laptop"), "--cores", "2", "--configfile", str(path), *extra],
-        capture_output=True, text=True,
-    )
-
-
-def planned_jobs(proc) -> dict[str, int]:
-    """Rule -> job count from a dry run's 'Job stats' table."""
-    text = proc.stdout + proc.stderr
-    if "Nothing to be done" in text:
-        return {}
-    table = text.split("Job stats:", 1)[1]
-    jobs = {}
-    for line in table.splitlines()[3:]:
-        m = re.match(r"^(\w+)\s+(\d+)\s*$", line.strip())
-        if not m:
-            break
-        jobs[m.group(1)] = int(m.group(2))
-    jobs.pop("total", None)
-    return jobs
-
-
-@pytest.fixture(scope="module")
-def finished_run(tmp_path_factory):
-    work = tmp_path_factory.mktemp("workflow")
-    cfg = tiny_config()
-    proc = snakemake(work, cfg)
-    assert proc.returncode == 0, proc.stderr[-3000:]
-    return work, cfg
+# `finished_run` (conftest.py): the tiny configuration run once with the laptop profile.
 
 
 def test_outputs_exist_with_their_layout(finished_run):
@@ -176,3 +125,91 @@ def test_changing_the_smoothing_reruns_observing_onward(finished_run):
     assert jobs == {"observe": 3, "measure": 3, "stack": 2, "forecast": 1, "plot_maps": 1,
                     "observe_variant": 2, "measure_variant": 2, "stack_variant": 2,
                     "plot_statistics": 1, "provenance": 1, "all": 1}, jobs
+
+
+def test_changing_the_noise_seed_reruns_only_observing_onward(finished_run):
+    work, cfg = finished_run
+    changed = copy.deepcopy(cfg)
+    changed["survey"]["noise"]["seed"] = cfg["seed"] + 1  # the noise seed: nothing before observing reads it
+    jobs = planned_jobs(snakemake(work, changed, "-n"))
+    assert jobs == {"observe": 3, "measure": 3, "stack": 2, "forecast": 1, "plot_maps": 1,
+                    "observe_variant": 2, "measure_variant": 2, "stack_variant": 2,
+                    "plot_statistics": 1, "provenance": 1, "all": 1}, jobs
+    same = copy.deepcopy(cfg)
+    same["survey"]["noise"]["seed"] = cfg["seed"]  # its default, written out: nothing changes
+    assert planned_jobs(snakemake(work, same, "-n")) == {"provenance": 1, "all": 1}
+
+
+def test_the_noise_seed_draws_new_noise_on_the_same_mask(finished_run, tmp_path):
+    from raytrace.observe import observe
+
+    work, cfg = finished_run
+    maps = work / "results/maps/fiducial/r0003.h5"
+    survey = {k: v for k, v in copy.deepcopy(cfg["survey"]).items() if k not in ("sources", "catalog", "fits")}
+    survey.pop("systematics")
+
+    def observed(noise_seed=None):
+        settings = copy.deepcopy(survey)
+        if noise_seed is not None:
+            settings["noise"]["seed"] = noise_seed
+        out = tmp_path / f"observed_{noise_seed}.h5"
+        observe(maps, out, settings, seed=cfg["seed"], realization=3)
+        with h5py.File(out) as f:
+            return {k: f[k][...] for k in ("kappa", "gamma1", "mask")}
+
+    default, master, other = observed(), observed(cfg["seed"]), observed(cfg["seed"] + 1)
+    for key in ("kappa", "gamma1", "mask"):  # the default is the master seed, bit for bit ...
+        np.testing.assert_array_equal(default[key], master[key])
+    # ... as the workflow's own file of that realisation is
+    with h5py.File(work / "results/observed/fiducial/r0003.h5") as f:
+        np.testing.assert_array_equal(f["kappa"][...], default["kappa"])
+    np.testing.assert_array_equal(other["mask"], default["mask"])  # the survey's mask stays
+    valid = default["mask"] > 0
+    for key in ("kappa", "gamma1"):
+        assert not np.allclose(other[key][:, valid], default[key][:, valid])
+        # the same signal under new noise of the same size
+        assert np.std(other[key][:, valid]) == pytest.approx(np.std(default[key][:, valid]), rel=0.1)
+
+
+def dry_run_resources(proc) -> list[dict]:
+    """Rule, wildcards, threads and resources of every job a dry run lists."""
+    import re
+
+    jobs = []
+    for block in re.split(r"\n(?=\s*(?:local)?rule \w+:)", proc.stdout + proc.stderr):
+        rule = re.match(r"\s*(?:local)?rule (\w+):", block)
+        res = re.search(r"^\s*resources: (.*)$", block, re.M)
+        if not rule or not res:
+            continue
+        wildcards = re.search(r"^\s*wildcards: (.*)$", block, re.M)
+        threads = re.search(r"^\s*threads: (\d+)$", block, re.M)
+        jobs.append({"rule": rule.group(1), "threads": int(threads.group(1)) if threads else 1,
+                     "wildcards": dict(kv.split("=", 1) for kv in wildcards.group(1).split(", ")) if wildcards else {},
+                     **{k: v for k, v in (kv.split("=", 1) for kv in res.group(1).split(", "))}})
+    return jobs
+
+
+def test_every_job_asks_for_the_resources_its_rule_computes(finished_run):
+    import csv
+
+    from raytrace import config as rc
+    from raytrace import resources as rr
+
+    work, cfg = finished_run
+    full = rc.validate(copy.deepcopy(cfg))
+    jobs = [j for j in dry_run_resources(snakemake(work, cfg, "-n", "--forceall")) if j["rule"] != "all"]
+    assert {j["rule"] for j in jobs} == set(rr.RULES)  # every rule of the workflow, each with its estimate
+    for job in jobs:
+        want = rr.estimate(job["rule"], full, model=job["wildcards"].get("model"))
+        assert (int(job["mem_mb"]), int(job["runtime"]), job["threads"]) == (
+            want.mem_mb, want.runtime_min, want.threads), job
+    # and what the jobs of the tiny run used fits in what they ask for: peak memory, and CPU
+    # time with the margin (the wall time on this shared machine says little)
+    for tsv in (work / "logs/benchmarks").rglob("*.tsv"):
+        rule = tsv.parent.name
+        model = next((m for m in full["suite"]["models"] if tsv.stem.startswith(m)), None)
+        want = rr.estimate(rule, full, model=model)
+        with open(tsv) as f:
+            row = next(csv.DictReader(f, delimiter="\t"))
+        assert float(row["max_rss"]) <= want.mem_mb, (tsv, row["max_rss"], want)
+        assert float(row["cpu_time"]) <= want.cpu_s * rr.TIME_FACTOR, (tsv, row["cpu_time"], want)

@@ -1,5 +1,6 @@
 # Shared names: every path is built here, from the configuration, in one place.
 from raytrace.demo import snapshot_paths
+import raytrace.resources as rtresources
 
 OUT = config["output"]
 MODELS = rtconfig.model_names(config)
@@ -61,3 +62,21 @@ def quoted(paths):
 
 def statistics_files():
     return [f for m in MODELS for f in realization_files("statistics", m)]
+
+
+# Job sizes (raytrace/resources.py, formulas in README "Resources"): memory in MB and wall
+# time in minutes of one job, from the configuration's sizes; each retry asks for more.
+# Extra keywords reach the estimate (e.g. the MPI tasks of a slicing job).
+def job_resources(rule, **extra):
+    def request(key):
+        def value(wildcards, attempt):
+            model = getattr(wildcards, "model", None)
+            return rtresources.estimate(rule, config, model=model, **extra).request(attempt)[key]
+
+        return value
+
+    return {"mem_mb": request("mem_mb"), "runtime": request("runtime")}
+
+
+def job_threads(rule):
+    return rtresources.estimate(rule, config).threads

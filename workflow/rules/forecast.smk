@@ -67,6 +67,11 @@ if FORECAST:
             "logs/forecast/forecast.log",
         benchmark:
             "logs/benchmarks/forecast/forecast.tsv"
+        group:
+            "summary"
+        threads: job_threads("forecast")
+        resources:
+            **job_resources("forecast"),
         shell:
             "{RAYTRACE} forecast --settings {params.settings:q} --stacks {input.stacks:q} --output {output.h5:q} "
             "--table {output.table:q} --html {output.html:q} --diagnostics {output.diagnostics:q} "

@@ -17,5 +17,10 @@ rule measure:
         "logs/measure/{model}_b{batch}.log",
     benchmark:
         "logs/benchmarks/measure/{model}_b{batch}.tsv"
+    group:
+        "batch"
+    threads: job_threads("measure")
+    resources:
+        **job_resources("measure"),
     shell:
         "{RAYTRACE} measure --settings {params.settings:q} --maps {input:q} --output {params.outputs} 2> {log:q}"

@@ -10,6 +10,9 @@ def observe_settings(nuisance=None):
     n_bins = rtconfig.configured_bin_count(config["survey"].get("sources"))
     if systematics is not None and not rtsystematics.Nuisance.from_settings(systematics, n_bins).is_null():
         survey["systematics"] = systematics
+    # survey.noise.seed (noise and catalogs; default: the master seed, which also draws the mask)
+    if "noise" in survey and survey["noise"].get("seed") == config["seed"]:
+        survey["noise"] = {k: v for k, v in survey["noise"].items() if k != "seed"}
     return as_json({"survey": survey, "seed": config["seed"]})
 
 
@@ -43,8 +46,11 @@ rule observe:
         "logs/observe/{model}_b{batch}.log",
     benchmark:
         "logs/benchmarks/observe/{model}_b{batch}.tsv"
+    group:
+        "batch"
+    threads: job_threads("observe")
     resources:
-        mem_mb=lambda w: 300 + config["maps"]["pixels"] ** 2 * 8 * 12 * (len(config["maps"]["source_redshifts"]) + 4) // 2**20,
+        **job_resources("observe"),
     shell:
         "{RAYTRACE} observe --realization {params.realizations} --settings {params.settings:q} "
         "--maps {input:q} --output {params.outputs}{params.extra} 2> {log:q}"

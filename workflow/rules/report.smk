@@ -23,6 +23,11 @@ rule plot_maps:
         settings=as_json({"models": MODELS, "map": REPORT["map"], "smoothing_arcmin": REPORT["smoothing_arcmin"]}),
     log:
         "logs/report/maps.log",
+    group:
+        "summary"
+    threads: job_threads("plot_maps")
+    resources:
+        **job_resources("plot_maps"),
     shell:
         "{RAYTRACE} plot-maps --settings {params.settings:q} --maps {input.maps:q} "
         "--observed {input.observed:q} --output {output:q} 2> {log:q}"
@@ -49,6 +54,11 @@ rule plot_statistics:
         ),
     log:
         "logs/report/statistics.log",
+    group:
+        "summary"
+    threads: job_threads("plot_statistics")
+    resources:
+        **job_resources("plot_statistics"),
     shell:
         "{RAYTRACE} plot-statistics --settings {params.settings:q} --stacks {input:q} --output {output:q} 2> {log:q}"
 
@@ -60,5 +70,10 @@ rule provenance:
         config=as_json(config),
     log:
         "logs/report/provenance.log",
+    group:
+        "summary"
+    threads: job_threads("provenance")
+    resources:
+        **job_resources("provenance"),
     shell:
         "{RAYTRACE} provenance --config {params.config:q} --output {output:q} 2> {log:q}"

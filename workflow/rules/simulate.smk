@@ -24,9 +24,9 @@ rule simulate:
         "logs/simulate/{model}.log",
     benchmark:
         "logs/benchmarks/simulate/{model}.tsv"
-    threads: 2
+    threads: job_threads("simulate")
     resources:
-        mem_mb=lambda w: 200 + 40 * config["suite"]["particles_per_side"] ** 3 * 8 // 2**20 * 3,
+        **job_resources("simulate"),
     shell:
         "RAYTRACE_THREADS={threads} {RAYTRACE} simulate --model {wildcards.model} "
         "--settings {params.settings:q} --outdir {params.outdir:q} 2> {log:q}"

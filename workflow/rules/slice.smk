@@ -16,16 +16,8 @@ rule slice:
         "logs/slice/{model}_{index}.log",
     benchmark:
         "logs/benchmarks/slice/{model}_{index}.tsv"
+    threads: job_threads("slice")
     resources:
-        # accumulators (3 axes x slabs x grid^2 float64) + float32 fields + one chunk
-        mem_mb=lambda w: 300
-        + (
-            3
-            * round(config["suite"]["box_mpc_h"] / config["planes"]["thickness_mpc_h"])
-            * config["planes"]["grid"] ** 2
-            * (8 + 6 * 4)
-            + config["planes"]["chunk_particles"] * 64
-        )
-        // 2**20,
+        **job_resources("slice"),
     shell:
         "{RAYTRACE} slice --settings {params.settings:q} --snapshot {input:q} --output {output:q} 2> {log:q}"

@@ -10,5 +10,10 @@ rule stack:
         "logs/stack/{model}.log",
     benchmark:
         "logs/benchmarks/stack/{model}.tsv"
+    group:
+        "summary"
+    threads: job_threads("stack")
+    resources:
+        **job_resources("stack"),
     shell:
         "{RAYTRACE} stack --model {wildcards.model} --statistics {input:q} --output {output:q} 2> {log:q}"

@@ -50,8 +50,11 @@ rule observe_variant:
         "logs/observe_variant/{variant}_{model}_b{batch}.log",
     benchmark:
         "logs/benchmarks/observe_variant/{variant}_{model}_b{batch}.tsv"
+    group:
+        "batch"
+    threads: job_threads("observe_variant")
     resources:
-        mem_mb=lambda w: 300 + config["maps"]["pixels"] ** 2 * 8 * 12 * (len(config["maps"]["source_redshifts"]) + 4) // 2**20,
+        **job_resources("observe_variant"),
     shell:
         "{RAYTRACE} observe --realization {params.realizations} --settings {params.settings:q} "
         "--maps {input:q} --output {params.outputs} 2> {log:q}"
@@ -69,6 +72,11 @@ rule measure_variant:
         "logs/measure_variant/{variant}_{model}_b{batch}.log",
     benchmark:
         "logs/benchmarks/measure_variant/{variant}_{model}_b{batch}.tsv"
+    group:
+        "batch"
+    threads: job_threads("measure_variant")
+    resources:
+        **job_resources("measure_variant"),
     shell:
         "{RAYTRACE} measure --settings {params.settings:q} --maps {input:q} --output {params.outputs} 2> {log:q}"
 
@@ -81,6 +89,11 @@ rule stack_variant:
         f"{OUT}/variants/{{variant}}/stacks/{{model}}.h5",
     log:
         "logs/stack_variant/{variant}_{model}.log",
+    group:
+        "summary"
+    threads: job_threads("stack_variant")
+    resources:
+        **job_resources("stack_variant"),
     shell:
         "{RAYTRACE} stack --model {wildcards.model}@{wildcards.variant} --statistics {input:q} "
         "--output {output:q} 2> {log:q}"

@@ -37,8 +37,11 @@ rule trace:
         "logs/trace/{model}_b{batch}.log",
     benchmark:
         "logs/benchmarks/trace/{model}_b{batch}.tsv"
+    group:
+        "batch"
+    threads: job_threads("trace")
     resources:
-        mem_mb=lambda w: 300 + (config["maps"]["pixels"] ** 2 * 8 * (12 + 8) + 5 * config["planes"]["grid"] ** 2 * 8) // 2**20,
+        **job_resources("trace"),
     shell:
         "{RAYTRACE} trace --model {wildcards.model} --realization {params.realizations} "
         "--settings {params.settings:q} --planes {input:q} --output {params.outputs} 2> {log:q}"
