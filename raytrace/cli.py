@@ -62,6 +62,15 @@ def cmd_validate(args) -> None:
     print(json.dumps(cfg, indent=1) if args.show else f"{args.config}: valid")
 
 
+def cmd_resources(args) -> None:
+    from . import config, resources
+
+    cfg = config.load(args.config)
+    print(f"{'rule':<34} {'threads':>7} {'mem_mb':>8} {'runtime':>8}   (first attempt; CPU estimate)")
+    for row in resources.table(cfg):
+        print(f"{row['rule']:<34} {row['threads']:>7} {row['mem_mb']:>8} {row['runtime']:>6} min   ({row['cpu_s']:.0f} s)")
+
+
 def cmd_simulate(args, log: Log) -> None:
     from .cosmology import Cosmology
     from .demo import generate_model
@@ -299,6 +308,9 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("config")
     v.add_argument("--show", action="store_true", help="print the configuration with defaults filled in")
 
+    rs = sub.add_parser("resources", help="memory, run time and threads each rule's jobs ask for")
+    rs.add_argument("config")
+
     sm = sub.add_parser("simulate", help="write the demo snapshots of one model")
     sm.add_argument("--model", required=True)
     sm.add_argument("--settings", required=True)
@@ -388,8 +400,8 @@ def per_realization(args: argparse.Namespace) -> list[argparse.Namespace]:
 def main(argv: Sequence[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     try:
-        if args.command == "validate":
-            cmd_validate(args)
+        if args.command in ("validate", "resources"):
+            (cmd_validate if args.command == "validate" else cmd_resources)(args)
             return 0
         log = Log(args.command)
         items = per_realization(args)

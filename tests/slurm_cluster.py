@@ -122,6 +122,10 @@ def _tail(path: Path, n: int = 5) -> str:
 
 def start(workdir: Path, *, cpus: int = 2, timeout: float = 60) -> Cluster:
     """Start munged (unless running), slurmctld and slurmd; return once the node is idle."""
+    import importlib.util
+
+    if importlib.util.find_spec("snakemake_executor_plugin_slurm") is None:
+        raise Unavailable('the SLURM executor plugin is not installed (pip install -e ".[slurm]")')
     missing = [c for c in COMMANDS if shutil.which(c) is None]
     if missing:
         raise Unavailable(f"SLURM is not installed (missing {', '.join(missing)}); install it with `{PACKAGES}`")

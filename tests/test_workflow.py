@@ -8,7 +8,8 @@ import h5py
 import numpy as np
 import pytest
 
-from workflow_helpers import planned_jobs, snakemake, tiny_config  # noqa: F401 (other modules import them from here)
+from workflow_helpers import (check_kill_and_resume, kill_during_trace, planned_jobs, seed_snapshots, snakemake,
+                              snakemake_command, tiny_config)  # noqa: F401 (other modules import them from here)
 
 # `finished_run` (conftest.py): the tiny configuration run once with the laptop profile.
 
@@ -213,3 +214,16 @@ def test_every_job_asks_for_the_resources_its_rule_computes(finished_run):
             row = next(csv.DictReader(f, delimiter="\t"))
         assert float(row["max_rss"]) <= want.mem_mb, (tsv, row["max_rss"], want)
         assert float(row["cpu_time"]) <= want.cpu_s * rr.TIME_FACTOR, (tsv, row["cpu_time"], want)
+
+
+def test_a_run_killed_midway_resumes_to_the_same_outputs(finished_run, tmp_path):
+    # SIGKILL to Snakemake and its jobs while a trace job is half-way through its batch (some
+    # of its files written, one being written), then the same command again: it completes
+    # with the outputs of the uninterrupted run. The run starts from the demo snapshots, like a
+    # run of user simulations. Under SLURM: tests/test_slurm.py (-m slow).
+    from raytrace import config as rc
+
+    reference, cfg = finished_run
+    seed_snapshots(reference, tmp_path)
+    killed = kill_during_trace(snakemake_command(tmp_path, cfg), tmp_path, rc.realizations_per_job(rc.validate(cfg)))
+    check_kill_and_resume(reference, tmp_path, cfg, killed, lambda: snakemake(tmp_path, cfg))

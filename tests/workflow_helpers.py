@@ -5,12 +5,15 @@ from __future__ import annotations
 
 import os
 import re
+import signal
 import subprocess
 import sys
+import time
 from pathlib import Path
 
 import h5py
 import numpy as np
+import pytest
 import yaml
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -43,9 +46,10 @@ def snakemake_command(workdir: Path, cfg: dict, *extra: str, profile: str = "lap
             "--profile", str(ROOT / "profiles" / profile), "--cores", cores, "--configfile", str(path), *extra]
 
 
-def snakemake(workdir: Path, cfg: dict, *extra: str, profile: str = "laptop", **kwargs) -> subprocess.CompletedProcess:
-    return subprocess.run(snakemake_command(workdir, cfg, *extra, profile=profile), capture_output=True, text=True,
-                          env=environment(), **kwargs)
+def snakemake(workdir: Path, cfg: dict, *extra: str, profile: str = "laptop", cores: str = "2"
+              ) -> subprocess.CompletedProcess:
+    return subprocess.run(snakemake_command(workdir, cfg, *extra, profile=profile, cores=cores), capture_output=True,
+                          text=True, env=environment())
 
 
 def planned_jobs(proc) -> dict[str, int]:
@@ -73,6 +77,29 @@ def planned_wildcards(proc, rule: str) -> list[dict[str, str]]:
             m = re.search(r"^\s*wildcards: (.*)$", block, re.M)
             found.append(dict(kv.split("=", 1) for kv in m.group(1).split(", ")) if m else {})
     return found
+
+
+def seed_snapshots(reference: Path, work: Path) -> int:
+    """Copy a finished run's demo snapshots, and Snakemake's records of them, into ``work``.
+
+    A run seeded so starts from its simulation suite, as a run of user snapshots does: from
+    slicing on. Returns the number of files copied.
+    """
+    import base64
+    import shutil
+
+    copied = 0
+    for src in sorted((reference / "results" / "snapshots").rglob("*.hdf5")):
+        dst = work / src.relative_to(reference)
+        dst.parent.mkdir(parents=True, exist_ok=True)
+        shutil.copy2(src, dst)
+        copied += 1
+    (work / ".snakemake" / "metadata").mkdir(parents=True, exist_ok=True)
+    for record in (reference / ".snakemake" / "metadata").iterdir():
+        name = base64.urlsafe_b64decode(record.name + "=" * (-len(record.name) % 4)).decode()
+        if name.startswith("results/snapshots/"):
+            shutil.copy2(record, work / ".snakemake" / "metadata" / record.name)
+    return copied
 
 
 # ---------------------------------------------------------------- comparing two runs
@@ -147,3 +174,55 @@ def run_differences(reference: Path, other: Path, *, only_present: bool = False)
         if diff:
             problems.append(f"{p}: {diff}")
     return problems
+
+
+# ------------------------------------------------------------------ kill and resume
+def kill_during_trace(command: list[str], work: Path, per_job: int, timeout: float = 1200) -> tuple[str, str]:
+    """Start Snakemake, SIGKILL it (and every process it started) while a trace job is
+    half-way through its batch; return that batch's (model, batch)."""
+    import psutil
+
+    proc = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=environment(),
+                            start_new_session=True)
+    digits = 4 - (len(str(per_job)) - 1)
+    deadline = time.monotonic() + timeout
+    try:
+        while time.monotonic() < deadline:
+            if proc.poll() is not None:
+                pytest.fail(f"Snakemake ended ({proc.returncode}) before a trace batch was caught half-way")
+            for model_dir in sorted((work / "results/maps").glob("*")):
+                done: dict[str, int] = {}
+                for f in model_dir.glob("r*.h5"):
+                    done[f.name[1:1 + digits]] = done.get(f.name[1:1 + digits], 0) + 1
+                partial = [b for b, n in done.items() if 0 < n < per_job]
+                if partial:
+                    return model_dir.name, partial[0]
+            time.sleep(0.05)
+        pytest.fail(f"no trace batch was caught half-way in {timeout:.0f} s")
+    finally:
+        children = psutil.Process(proc.pid).children(recursive=True) if proc.poll() is None else []
+        if proc.poll() is None:
+            os.killpg(proc.pid, signal.SIGKILL)
+        for child in children:
+            try:
+                child.kill()
+            except psutil.NoSuchProcess:
+                pass
+        proc.wait()
+
+
+def check_kill_and_resume(reference: Path, work: Path, cfg: dict, killed: tuple[str, str], resume) -> None:
+    model, batch = killed
+    # nothing under a final name is unfinished: every output present is the complete file
+    assert run_differences(reference, work, only_present=True) == []
+    assert any((work / "results/maps" / model).glob(f"r{batch}*.h5"))  # the half-done batch left files
+    # a killed Snakemake leaves its lock; the user removes it (README, "Resume") and reruns
+    assert snakemake(work, cfg, "--unlock").returncode == 0
+    dry = snakemake(work, cfg, "-n")
+    assert {"model": model, "batch": batch} in planned_wildcards(dry, "trace"), dry.stdout[-3000:]
+    proc = resume()
+    assert proc.returncode == 0, (proc.stdout + proc.stderr)[-4000:]
+    assert run_differences(reference, work) == []
+    # the killed job's temporary files went when the files were written again
+    assert temporary_files(work) == []
+    assert snakemake(work, cfg, "-n").stdout.count("Nothing to be done") == 1
