@@ -26,7 +26,7 @@ CPU seconds t and memory m (MB) of one job, with the constants below:
 - simulate (one model, every snapshot): t = 7 + 1e-6 N³ n_z, m = 200 + 2e-4 N³
 - slice (one snapshot): t = 2 + 5e-7 N³ + 5e-8 · 3 n_s G² log2 G,
   m = 200 + (3 n_s G² · 32 B + min(chunk_particles, N³) · 64 B)
-- trace (R realisations): t = 4 + R n_p (1e-3 + 2e-8 P² M_t + 1.2e-8 G²),
+- trace (R realisations): t = 5 + R n_p (1e-3 + 2e-8 P² M_t + 1.2e-8 G²),
   m = 270 + P² (150 M_t + 300) B + 48 G² B
 - observe, observe_variant: t = 3 + R (0.1 + 2e-8 P² log2 P · M_o (S + 1) + 2e-6 n_gal),
   m = 230 + P² M_o (S + 4) · 24 B + 200 n_gal B, with n_gal the catalog galaxies
@@ -222,7 +222,7 @@ def estimate(rule: str, cfg: Mapping[str, Any], *, model: str | None = None, tas
         m = 200 + (3 * z.slabs * g2 * 32 + min(z.chunk, particles) * 64) / _MB
         return Estimate(rule, t, m)
     if rule == "trace":
-        t = 4 + z.per_job * z.planes * (1e-3 + 2e-8 * p2 * z.traced_maps + 1.2e-8 * g2)
+        t = 5 + z.per_job * z.planes * (1e-3 + 2e-8 * p2 * z.traced_maps + 1.2e-8 * g2)
         m = 270 + (p2 * (150 * z.traced_maps + 300) + 48 * g2) / _MB
         return Estimate(rule, t, m)
     if rule in ("observe", "observe_variant"):
