@@ -35,7 +35,7 @@ CPU seconds t and memory m (MB) of one job, with the constants below:
 - stack, stack_variant: t = 2 + n_f (0.03 + 2e-6 n_e), m = 150 + (3 n_f n_e + 3 n_e²) · 8 B
 - forecast: t = 5 + 1e-6 n_models n_f n_e + 2e-9 n_comb n_e³,
   m = 200 + (2 n_models n_f n_e + 4 n_e²) · 8 B
-- plot_maps: t = 5 + 0.5 n_models, m = 300 + 16 n_models M_o P² B
+- plot_maps: t = 5 + 0.5 n_models + 1e-7 n_models M_o P², m = 300 + 16 n_models M_o P² B
 - plot_statistics: t = 5 + n_stat + 1e-6 n_models n_f n_e, m = 300 + 8 n_models n_f n_e B
 - provenance: t = 3, m = 150
 
@@ -242,7 +242,8 @@ def estimate(rule: str, cfg: Mapping[str, Any], *, model: str | None = None, tas
         t = 5 + 1e-6 * z.models * most * e + 2e-9 * max(1, z.combinations) * e**3
         return Estimate(rule, t, 200 + (2 * z.models * most * e + 4 * e * e) * 8 / _MB)
     if rule == "plot_maps":
-        return Estimate(rule, 5 + 0.5 * z.models, 300 + 16 * z.models * z.observed_maps * p2 / _MB)
+        return Estimate(rule, 5 + 0.5 * z.models + 1e-7 * z.models * z.observed_maps * p2,
+                        300 + 16 * z.models * z.observed_maps * p2 / _MB)
     if rule == "plot_statistics":
         e = z.elements
         return Estimate(rule, 5 + z.statistics + 1e-6 * z.models * most * e, 300 + 8 * z.models * most * e / _MB)
