@@ -32,8 +32,16 @@ config = rtconfig.validate(config)
 
 include: "workflow/rules/common.smk"
 include: "workflow/rules/simulate.smk"
-include: "workflow/rules/slice.smk"
-include: "workflow/rules/trace.smk"
+if config["maps"]["geometry"] == "sphere":  # full-sky HEALPix shells instead of lens planes
+
+    include: "workflow/rules/sky.smk"
+
+else:
+
+    include: "workflow/rules/slice.smk"
+    include: "workflow/rules/trace.smk"
+
+
 include: "workflow/rules/observe.smk"
 include: "workflow/rules/measure.smk"
 include: "workflow/rules/stack.smk"

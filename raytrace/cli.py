@@ -18,6 +18,7 @@ from pathlib import Path
 from typing import Sequence
 
 from .errors import RaytraceError
+from .sky import cli as sky_cli
 
 
 class Log:
@@ -160,8 +161,15 @@ def _source_bins(sources):
 
 def cmd_observe(args, log: Log) -> None:
     from .observe import observe
+    from .sky import is_sphere_file
 
     s = _settings(args.settings)
+    if is_sphere_file(args.maps):  # the full-sky branch (raytrace.sky)
+        from .sky.survey import observe as observe_sphere
+
+        observe_sphere(args.maps, args.output, s["survey"], seed=s["seed"], realization=args.realization,
+                       base_dir=Path.cwd(), fits_path=args.fits, log=log)
+        return
     catalogs = (args.catalog, args.catalog_fits) if args.catalog else None
     observe(args.maps, args.output, s["survey"], seed=s["seed"], realization=args.realization, base_dir=Path.cwd(),
             catalog_paths=catalogs, fits_path=args.fits, log=log)
@@ -174,6 +182,13 @@ def cmd_measure(args, log: Log) -> None:
     from .hdf5 import atomic_h5, open_input, write_dataset
 
     s = _settings(args.settings)
+    from .sky import is_sphere_file
+
+    if is_sphere_file(args.maps):  # the full-sky branch (raytrace.sky)
+        from .sky.statistics import measure as measure_sphere
+
+        measure_sphere(args.maps, args.output, s, log=log)
+        return
     with open_input(args.maps) as f:
         for key in ("kappa", "kappa_smoothed", "mask", "noise_sigma"):
             if key not in f:
@@ -343,6 +358,7 @@ def build_parser() -> argparse.ArgumentParser:
     pv = sub.add_parser("provenance", help="configuration and software versions of the run (HTML)")
     pv.add_argument("--config", required=True, help="the run's configuration as JSON")
     pv.add_argument("--output", required=True)
+    sky_cli.add_parsers(sub)  # shells, trace-sphere (the full-sky branch)
     return p
 
 
@@ -356,6 +372,8 @@ BATCHED = {
     "observe": ("realization", "maps", "output", "catalog", "catalog_fits", "fits"),
     "measure": ("maps", "output"),
 }
+COMMANDS.update(sky_cli.COMMANDS)
+BATCHED.update(sky_cli.BATCHED)
 
 
 def per_realization(args: argparse.Namespace) -> list[argparse.Namespace]:

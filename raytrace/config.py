@@ -79,6 +79,7 @@ def validate(config: Mapping[str, Any]) -> dict:
     cfg = copy.deepcopy(dict(config))
     _set_defaults(cfg, sch, sch)
     _check_semantics(cfg)
+    _check_geometry(cfg)
     _check_realizations(cfg)
     _check_forecast(cfg)
     return cfg
@@ -178,14 +179,17 @@ def _check_semantics(cfg: dict) -> None:
     zs = suite["snapshot_redshifts"]
     if len(set(zs)) != len(zs):
         raise RaytraceError("suite.snapshot_redshifts: redshifts must be distinct")
+    sphere = cfg["maps"]["geometry"] == "sphere"
     box, t = float(suite["box_mpc_h"]), float(cfg["planes"]["thickness_mpc_h"])
     n_slabs = box / t
-    if abs(n_slabs - round(n_slabs)) > 1e-6 or round(n_slabs) < 1:
+    if not sphere and (abs(n_slabs - round(n_slabs)) > 1e-6 or round(n_slabs) < 1):
         raise RaytraceError(f"planes.thickness_mpc_h: {t} does not divide suite.box_mpc_h = {box}")
     srcs = cfg["maps"]["source_redshifts"]
     if sorted(srcs) != list(srcs) or len(set(srcs)) != len(srcs):
         raise RaytraceError("maps.source_redshifts: must be distinct and increasing")
-    check_sources_within_planes(srcs, snapshot_redshifts(cfg))
+    # user light cones and HEALPix shells are checked against their own depth by the trace stage
+    if not sphere or (cfg.get("shells") or {}).get("kind", "tile") == "tile":
+        check_sources_within_planes(srcs, snapshot_redshifts(cfg))
     for name in suite["models"]:
         model_cosmology(cfg, name)  # rejects impossible parameter combinations
     sources = cfg.get("survey", {}).get("sources")
@@ -210,6 +214,13 @@ def _check_semantics(cfg: dict) -> None:
         raise RaytraceError("statistics.power_spectrum.ell_edges: must be strictly increasing")
 
 
+def _check_geometry(cfg: dict) -> None:
+    """Keys of the full-sky branch and of the flat one used with the other geometry."""
+    from .sky.config import check
+
+    check(cfg)
+
+
 # ------------------------------------------------------------ realisations, forecast
 def map_labels(cfg: Mapping) -> list[str]:
     """Labels of the maps of a run: ``z0.50`` ... per source redshift, then ``bin0`` ..."""
@@ -219,7 +230,16 @@ def map_labels(cfg: Mapping) -> list[str]:
         bins = sources.get("bins") or {}
         n_bins = len(bins["edges"]) - 1 if "edges" in bins else int(bins.get("n_bins", 1))
         labels += [f"bin{i}" for i in range(n_bins)]
+    if cfg["maps"].get("cmb_lensing"):
+        labels.append("cmb")  # the full-sky branch's CMB-lensing map (raytrace.sky.cmb)
     return labels
+
+
+def map_area_deg2(cfg: Mapping) -> float:
+    """Area of one map before masking: the flat field, or the whole sky."""
+    if cfg["maps"].get("geometry", "flat") == "sphere":
+        return 4.0 * np.pi * (180.0 / np.pi) ** 2
+    return float(cfg["maps"]["field_deg"]) ** 2
 
 
 def fiducial_model(cfg: Mapping) -> str:
