@@ -68,3 +68,42 @@ def suite(tmp_path_factory) -> Suite:
             write_planes(f, p)
         planes.append(out)
     return Suite(cosmo, box, n, zs, snaps, planes, thickness, grid)
+
+
+# ------------------------------------------------------------------------------------
+# full-sky branch
+@dataclass
+class SkySuite:
+    """A coarse demo suite for full-sky checks, with the shells of each realisation cached."""
+
+    cosmo: Cosmology
+    box: float
+    n_particles: int
+    snapshot_z: list[float]
+    snapshots: list[list[Path]]
+
+    def __post_init__(self):
+        self._shells = {}
+
+    def shells(self, realization: int, *, nside: int, z_max: float, thickness: float = 128.0, cone=None):
+        """(schedule, [contrast map per shell]) of one realisation, tiled from the snapshots."""
+        from raytrace.sky.shells import build_tiled, choose_shells, shell_schedule
+
+        key = (realization, nside, z_max, thickness, None if cone is None else (tuple(cone[0]), cone[1]))
+        if key not in self._shells:
+            sched = shell_schedule(self.cosmo, thickness, float(self.cosmo.comoving_distance(z_max)), self.snapshot_z)
+            choice = choose_shells(sched, self.box, 5, realization)
+            maps = [s.delta for s in build_tiled(sched, choice, self.snapshots, nside, cone=cone)]
+            self._shells[key] = (sched, maps)
+        return self._shells[key]
+
+
+@pytest.fixture(scope="session")
+def sky_suite(tmp_path_factory) -> SkySuite:
+    """A 512 Mpc/h box with 64^3 particles at z = 0, 0.5, 1: full-sky shells in seconds."""
+    root = tmp_path_factory.mktemp("sky_suite")
+    cosmo = Cosmology(**FIDUCIAL)
+    zs = [0.0, 0.5, 1.0]
+    snaps = generate_model(cosmo, box_mpc_h=512.0, particles_per_side=64, snapshot_redshifts=zs, seed=21,
+                           directory=root / "snapshots")
+    return SkySuite(cosmo, 512.0, 64, zs, snaps)

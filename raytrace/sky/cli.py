@@ -82,6 +82,7 @@ _REMAINDER_CACHE: dict = {}
 
 
 def cmd_trace_sphere(args, log) -> None:
+    import healpy as hp
     import numpy as np
 
     from ..cli import _source_bins
@@ -117,7 +118,11 @@ def cmd_trace_sphere(args, log) -> None:
                 _REMAINDER_CACHE[key] = cm.remainder_power(cosmo, chi_end, lmax)
                 log(f"CMB lensing: Gaussian completion from {chi_end:.0f} to {last.chi_mpc_h:.0f} Mpc/h (camb, Limber)")
             cl_rest = _REMAINDER_CACHE[key]
-            completions.append(tr.Completion(n_src, cm.gaussian_alm(cl_rest, s["seed"], args.realization), lmax))
+            from .pixels import pixel_window
+
+            # pixel-averaged like the shells' part of the map (raytrace.sky.cmb)
+            alm_g = hp.almxfl(cm.gaussian_alm(cl_rest, s["seed"], args.realization), pixel_window(nside, lmax))
+            completions.append(tr.Completion(n_src, alm_g, lmax))
             chi_src.append(last.chi_mpc_h)
         method = m.get("method", "multi-plane")
         run = {"born": tr.born, "multi-plane": tr.multi_plane}.get(method)
@@ -133,8 +138,9 @@ def cmd_trace_sphere(args, log) -> None:
     consistency = {}
     for label, i in zip(labels, order):
         consistency[label] = tr.shear_consistency(maps["kappa"][i], maps["gamma1"][i], maps["gamma2"][i])
-        log(f"{label}: traced shear vs spin-2 transform of kappa: relative rms {consistency[label]['relative_rms']:.2e}, "
-            f"B/E power {consistency[label]['b_over_e']:.2e}")
+        c = consistency[label]
+        log(f"{label}: traced shear vs spin-2 transform of kappa: relative rms {c['relative_rms']:.2e} (pixels), "
+            f"E mismatch {c['e_mismatch']:.2e}, B/E power {c['b_over_e']:.2e} (ell {c['ell_min']}-{c['ell_max']})")
     with atomic_h5(args.output, stage="trace", settings=s, inputs=[args.shells], seed=s["seed"]) as f:
         for key, value in maps.items():
             write_dataset(f, key, value[:n_src].astype(np.float32), "1", axes="[source, pixel]")

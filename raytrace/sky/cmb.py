@@ -25,7 +25,10 @@ so :math:`\kappa_G` is drawn independently of the shells; its random phases depe
 the seed and the realisation, never on the model, so every model of a realisation shares
 them (paired, like the plane choices and the noise). Its shear is the spin-2 transform of
 :math:`\kappa_G`, and it is added to the traced maps in the Born approximation (the
-lensing of the traced part by the far range and vice versa is second order).
+lensing of the traced part by the far range and vice versa is second order). Its
+coefficients are multiplied by the HEALPix pixel window
+(:func:`raytrace.sky.pixels.pixel_window`), so that the whole map is a pixel average like
+the shells' part (whose particles are binned into pixels).
 
 The sum's power is checked against camb's lensing-potential power converted to
 convergence, :math:`C_\ell^{\kappa\kappa} = [\ell(\ell+1)]^2 C_\ell^{\phi\phi}/4`
