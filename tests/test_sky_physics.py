@@ -132,39 +132,46 @@ def test_point_mass_shear_and_deflection(sky_suite, tmp_path, method):
 
 
 # ------------------------------------------------------------------------------------
-@pytest.fixture(scope="module")
-def snapshot_power(sky_suite):
+def realised_power(suite, mesh=128):
     """The simulation's own 3-D power per snapshot (CIC deconvolved, discreteness kept)."""
-    mesh = 128
-    edges = np.geomspace(2 * np.pi / sky_suite.box, np.pi * mesh / sky_suite.box, 40)
+    edges = np.geomspace(2 * np.pi / suite.box, np.pi * mesh / suite.box, 40)
     out = []
-    for files in sky_suite.snapshots:
+    for files in suite.snapshots:
         pos = np.concatenate([c.positions for c in iter_chunks(read_header(files), [1])])
-        k, p, n_modes = power_spectrum_3d(pos, np.ones(len(pos)), sky_suite.box, mesh, edges, subtract_shot_noise=False)
+        k, p, n_modes = power_spectrum_3d(pos, np.ones(len(pos)), suite.box, mesh, edges, subtract_shot_noise=False)
         out.append(p)
     keep = n_modes > 0
     return k[keep], np.array(out)[:, keep]
 
 
-@pytest.fixture(scope="module")
-def born_maps(sky_suite):
-    """Born maps of the galaxy sources (shells nearer than CHI_MIN left empty) and the CMB."""
-    cosmo = sky_suite.cosmo
+def born_and_cmb_maps(suite, nside, n_real):
+    """Born maps of the galaxy sources (shells nearer than CHI_MIN left empty) and of the CMB."""
+    cosmo = suite.cosmo
     last = cmb.last_scattering(cosmo)
-    lmax = st.default_lmax(NSIDE)
-    sched, _ = sky_suite.shells(0, nside=NSIDE, z_max=1.0, thickness=THICKNESS)
+    lmax = st.default_lmax(nside)
+    sched, _ = suite.shells(0, nside=nside, z_max=1.0, thickness=THICKNESS)
     cl_rest = cmb.remainder_power(cosmo, float(sched.chi_hi[-1]), lmax)  # the same shells in every realisation
     out = []
-    for r in range(N_REAL):
-        sched, shells = sky_suite.shells(r, nside=NSIDE, z_max=1.0, thickness=THICKNESS)
+    for r in range(n_real):
+        sched, shells = suite.shells(r, nside=nside, z_max=1.0, thickness=THICKNESS)
         far = [m if sched.chi_lo[k] >= CHI_MIN - 1e-9 else np.zeros_like(m) for k, m in enumerate(shells)]
         chis = [float(cosmo.comoving_distance(z)) for z in SOURCES]
-        galaxies = st.born(cosmo, sched, lambda k: far[k], NSIDE, chi_sources=chis)
-        alm = hp.almxfl(cmb.gaussian_alm(cl_rest, 9, r), pixel_window(NSIDE))
-        lensed = st.born(cosmo, sched, lambda k: shells[k], NSIDE, chi_sources=[last.chi_mpc_h],
+        galaxies = st.born(cosmo, sched, lambda k: far[k], nside, chi_sources=chis)
+        alm = hp.almxfl(cmb.gaussian_alm(cl_rest, 9, r), pixel_window(nside))
+        lensed = st.born(cosmo, sched, lambda k: shells[k], nside, chi_sources=[last.chi_mpc_h],
                          completions=[st.Completion(0, alm, lmax)])
         out.append((sched, galaxies, lensed))
     return out
+
+
+@pytest.fixture(scope="module")
+def snapshot_power(sky_suite):
+    return realised_power(sky_suite)
+
+
+@pytest.fixture(scope="module")
+def born_maps(sky_suite):
+    return born_and_cmb_maps(sky_suite, NSIDE, N_REAL)
 
 
 def limber_shells(cosmo, sched, chi_s, ell, k, pk, chi_min):
@@ -185,6 +192,31 @@ def limber_shells(cosmo, sched, chi_s, ell, k, pk, chi_min):
     return out
 
 
+def check_born_against_limber(suite, maps, power, nside, edges):
+    cosmo = suite.cosmo
+    k, pk = power
+    f_cb = 1.0 - cosmo.f_nu  # neutrinos are a uniform background in the demo suite
+    w2 = pixel_window(nside) ** 2
+    ell = np.arange(3 * nside, dtype=float)
+    for i, zs in enumerate(SOURCES):
+        chi_s = float(cosmo.comoving_distance(zs))
+        theory = f_cb**2 * limber_shells(cosmo, maps[0][0], chi_s, ell, k, pk, CHI_MIN) * w2
+        cls = np.array([hp.anafast(g["kappa"][i], lmax=3 * nside - 1) for _, g, _ in maps])
+        ratio = np.array([cls[:, a:b].sum(axis=1).mean() / theory[a:b].sum() for a, b in zip(edges[:-1], edges[1:])])
+        print(f"z_s = {zs}: full-sky Born / Limber = {np.round(ratio, 3)} in l bins {edges} (nside {nside})")
+        assert np.all(np.abs(ratio - 1) < 0.10), (zs, ratio)
+
+
+def check_cmb_against_camb(suite, maps, nside, edges):
+    lmax = 3 * nside - 1
+    reference = cmb.camb_kappa_power(suite.cosmo, lmax)
+    w2 = pixel_window(nside) ** 2
+    cls = np.array([hp.anafast(c["kappa"][0], lmax=lmax) / w2 for _, _, c in maps])
+    ratio = np.array([cls[:, a:b].sum(axis=1).mean() / reference[a:b].sum() for a, b in zip(edges[:-1], edges[1:])])
+    print(f"CMB lensing: kappa power / camb = {np.round(ratio, 3)} in l bins {edges} (nside {nside})")
+    assert np.all(np.abs(ratio - 1) < 0.10), ratio
+
+
 def test_born_power_matches_limber(sky_suite, born_maps, snapshot_power):
     # Full-sky Born power against Limber with the simulation's realised matter power (the LPT
     # suite is not linear), times the HEALPix pixel window (particles are binned into
@@ -194,19 +226,7 @@ def test_born_power_matches_limber(sky_suite, born_maps, snapshot_power):
     # thickness, which lowers the power below Limber by 5-15% at l ~ 20-70 for 128 Mpc/h
     # shells and by half as much for 256 Mpc/h (flat-sky projection of P with the shell's
     # k_parallel window, computed while building this test).
-    cosmo = sky_suite.cosmo
-    k, pk = snapshot_power
-    f_cb = 1.0 - cosmo.f_nu  # neutrinos are a uniform background in the demo suite
-    w2 = pixel_window(NSIDE) ** 2
-    ell = np.arange(3 * NSIDE, dtype=float)
-    edges = [30, 45, 64, 90, 128]
-    for i, zs in enumerate(SOURCES):
-        chi_s = float(cosmo.comoving_distance(zs))
-        theory = f_cb**2 * limber_shells(cosmo, born_maps[0][0], chi_s, ell, k, pk, CHI_MIN) * w2
-        cls = np.array([hp.anafast(g["kappa"][i], lmax=3 * NSIDE - 1) for _, g, _ in born_maps])
-        ratio = np.array([cls[:, a:b].sum(axis=1).mean() / theory[a:b].sum() for a, b in zip(edges[:-1], edges[1:])])
-        print(f"z_s = {zs}: full-sky Born / Limber = {np.round(ratio, 3)} in l bins {edges}")
-        assert np.all(np.abs(ratio - 1) < 0.10), (zs, ratio)
+    check_born_against_limber(sky_suite, born_maps, snapshot_power, NSIDE, [30, 45, 64, 90, 128])
 
 
 def test_cmb_lensing_power_matches_camb(sky_suite, born_maps):
@@ -214,14 +234,33 @@ def test_cmb_lensing_power_matches_camb(sky_suite, born_maps):
     # lensing-potential power, C_l^kk = [l(l+1)]^2 C_l^phiphi / 4 (Lewis & Challinor 2006),
     # linear theory, over 30 <= l <= 200 (= 1.6 nside): above the box's lowest modes, below
     # the shot noise of the nearest shells.
-    lmax = 3 * NSIDE - 1
-    reference = cmb.camb_kappa_power(sky_suite.cosmo, lmax)
-    w2 = pixel_window(NSIDE) ** 2
-    cls = np.array([hp.anafast(c["kappa"][0], lmax=lmax) / w2 for _, _, c in born_maps])
-    edges = [30, 50, 80, 130, 200]
-    ratio = np.array([cls[:, a:b].sum(axis=1).mean() / reference[a:b].sum() for a, b in zip(edges[:-1], edges[1:])])
-    print(f"CMB lensing: kappa power / camb = {np.round(ratio, 3)} in l bins {edges}")
-    assert np.all(np.abs(ratio - 1) < 0.10), ratio
+    check_cmb_against_camb(sky_suite, born_maps, NSIDE, [30, 50, 80, 130, 200])
+
+
+@pytest.fixture(scope="module")
+def fine_sky_suite(tmp_path_factory):
+    """The full-size suite: 128^3 particles in the same 512 Mpc/h box (particle Nyquist 0.79 h/Mpc)."""
+    from conftest import FIDUCIAL, SkySuite
+
+    from raytrace.cosmology import Cosmology
+    from raytrace.demo import generate_model
+
+    cosmo = Cosmology(**FIDUCIAL)
+    root = tmp_path_factory.mktemp("fine_sky_suite")
+    zs = [0.0, 0.5, 1.0]
+    snaps = generate_model(cosmo, box_mpc_h=512.0, particles_per_side=128, snapshot_redshifts=zs, seed=21,
+                           directory=root / "snapshots")
+    return SkySuite(cosmo, 512.0, 128, zs, snaps)
+
+
+@pytest.mark.slow
+def test_full_size_born_and_cmb_power(fine_sky_suite):
+    # Full-size versions of the two checks above: nside 512, 128^3 particles, l up to 256
+    # (k = l / chi_min <= 0.5 h/Mpc, below the particle Nyquist wavenumber 0.79 h/Mpc).
+    maps = born_and_cmb_maps(fine_sky_suite, 512, 2)
+    check_born_against_limber(fine_sky_suite, maps, realised_power(fine_sky_suite, mesh=256), 512,
+                              [30, 45, 64, 90, 128, 180, 256])
+    check_cmb_against_camb(fine_sky_suite, maps, 512, [30, 50, 80, 130, 200, 300, 400])
 
 
 def test_born_shear_is_an_e_mode(born_maps):

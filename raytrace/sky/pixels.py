@@ -65,7 +65,12 @@ def nside_from_npix(n: int, where: str) -> int:
 @njit(cache=True, nogil=True, inline="always")
 def vec2pix_ring(nside, x, y, z):
     """RING pixel of the direction (x, y, z) (any length > 0); see the module notes."""
-    r = math.sqrt(x * x + y * y + z * z)
+    return vec2pix_ring_r(nside, x, y, z, math.sqrt(x * x + y * y + z * z))
+
+
+@njit(cache=True, nogil=True, inline="always")
+def vec2pix_ring_r(nside, x, y, z, r):
+    """:func:`vec2pix_ring` with the vector's length ``r`` given."""
     nz = z / r
     phi = 0.0 if (x == 0.0 and y == 0.0) else math.atan2(y, x)
     za = abs(nz)

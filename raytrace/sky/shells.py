@@ -62,7 +62,7 @@ from ..config import PlaneSchedule, plane_schedule
 from ..cosmology import Cosmology
 from ..errors import RaytraceError
 from ..snapshots import RHO_CRIT_1E10_MSUN_H_PER_MPC_H3
-from .pixels import check_nside, nside_from_npix, npix, pixel_area_sr, random_rotation, vec2pix_ring
+from .pixels import nside_from_npix, npix, pixel_area_sr, random_rotation, vec2pix_ring, vec2pix_ring_r
 
 #: first element of the per-realisation seed of the shell choices (planes use 1, phases 0)
 SHELL_STREAM = 2
@@ -164,14 +164,15 @@ def _range_sq(a, b):
 
 
 @njit(cache=True, nogil=True)
-def deposit_tiled_shell(pos, mass, offsets, nb, box, lo, hi, rot, shift, nside, out, cone, cone_cos):
+def deposit_tiled_shell(rpos, mass, offsets, nb, box, lo, hi, rot, shift, nside, out, cone, cone_cos):
     """Add the images of the tiled box inside the shell [lo, hi) to ``out`` (npix,).
 
-    ``pos`` (n, 3) block-sorted positions in [0, box), ``mass`` (n,) or (1,) for equal
-    masses, ``offsets`` from :func:`_block_sort`. Each image y = pos + shift + m box with
-    lo <= |y| < hi adds mass / |y|^2 to the RING pixel of rot @ y. With ``cone_cos > -1``
-    only images within the cone of axis ``cone`` (sky frame) and cosine ``cone_cos`` are
-    kept. Returns the number of images deposited.
+    ``rpos`` (n, 3) block-sorted positions in [0, box) already rotated to the sky frame
+    (``positions @ rot.T``), ``mass`` (n,) or (1,) for equal masses, ``offsets`` from
+    :func:`_block_sort`. Each image y = pos + shift + m box with lo <= |y| < hi adds
+    mass / |y|^2 to the RING pixel of rot @ y = rpos + rot @ (shift + m box). With
+    ``cone_cos > -1`` only images within the cone of axis ``cone`` (sky frame) and cosine
+    ``cone_cos`` are kept. Returns the number of images deposited.
     """
     cell = box / nb
     lo2 = lo * lo
@@ -218,6 +219,10 @@ def deposit_tiled_shell(pos, mass, offsets, nb, box, lo, hi, rot, shift, nside, 
                     continue
                 for i in range(nb):
                     bz_lo[i], bz_hi[i] = _range_sq(oz + i * cell, oz + (i + 1) * cell)
+                # the replica's offset in the sky frame
+                sx = rot[0, 0] * ox + rot[0, 1] * oy + rot[0, 2] * oz
+                sy = rot[1, 0] * ox + rot[1, 1] * oy + rot[1, 2] * oz
+                sz = rot[2, 0] * ox + rot[2, 1] * oy + rot[2, 2] * oz
                 for i in range(nb):
                     for j in range(nb):
                         sxy_lo = bx_lo[i] + by_lo[j]
@@ -239,21 +244,28 @@ def deposit_tiled_shell(pos, mass, offsets, nb, box, lo, hi, rot, shift, nside, 
                                         continue
                             b = (i * nb + j) * nb + k
                             for p in range(offsets[b], offsets[b + 1]):
-                                yx = pos[p, 0] + ox
-                                yy = pos[p, 1] + oy
-                                yz = pos[p, 2] + oz
-                                r2 = yx * yx + yy * yy + yz * yz
+                                dx = rpos[p, 0] + sx
+                                dy = rpos[p, 1] + sy
+                                dz = rpos[p, 2] + sz
+                                r2 = dx * dx + dy * dy + dz * dz
                                 if r2 < lo2 or r2 >= hi2:
                                     continue
-                                dx = rot[0, 0] * yx + rot[0, 1] * yy + rot[0, 2] * yz
-                                dy = rot[1, 0] * yx + rot[1, 1] * yy + rot[1, 2] * yz
-                                dz = rot[2, 0] * yx + rot[2, 1] * yy + rot[2, 2] * yz
-                                if use_cone and dx * cone[0] + dy * cone[1] + dz * cone[2] < cone_cos * math.sqrt(r2):
+                                r = math.sqrt(r2)
+                                if use_cone and dx * cone[0] + dy * cone[1] + dz * cone[2] < cone_cos * r:
                                     continue
                                 w = (m0 if equal else mass[p]) / r2
-                                out[vec2pix_ring(nside, dx, dy, dz)] += w
+                                out[vec2pix_ring_r(nside, dx, dy, dz, r)] += w
                                 n_hit += 1
     return n_hit
+
+
+@njit(cache=True, nogil=True)
+def _rotate(pos, rot, out):
+    """out = pos @ rot.T in float64."""
+    for p in range(pos.shape[0]):
+        x, y, z = float(pos[p, 0]), float(pos[p, 1]), float(pos[p, 2])
+        for a in range(3):
+            out[p, a] = rot[a, 0] * x + rot[a, 1] * y + rot[a, 2] * z
 
 
 @njit(cache=True, nogil=True)
@@ -364,9 +376,12 @@ class TiledSnapshot:
         if out is None:
             out = np.zeros(npix(nside))
         axis, cos_r = (np.zeros(3), -2.0) if cone is None else (np.asarray(cone[0], float), math.cos(cone[1]))
-        n = deposit_tiled_shell(self.positions, self.masses, self.offsets, self.blocks_per_side, self.box_mpc_h,
-                                float(lo), float(hi), np.ascontiguousarray(rotation, dtype=np.float64),
-                                np.asarray(shift, dtype=np.float64), int(nside), out, axis, cos_r)
+        rot = np.ascontiguousarray(rotation, dtype=np.float64)
+        rpos = np.empty((len(self.positions), 3))  # one pass per shell, 24 bytes per particle
+        _rotate(self.positions, rot, rpos)
+        n = deposit_tiled_shell(rpos, self.masses, self.offsets, self.blocks_per_side, self.box_mpc_h,
+                                float(lo), float(hi), rot, np.asarray(shift, dtype=np.float64), int(nside), out,
+                                axis, cos_r)
         return out, n
 
 
