@@ -235,6 +235,13 @@ def map_labels(cfg: Mapping) -> list[str]:
     return labels
 
 
+def map_pixel_count(cfg: Mapping) -> int:
+    """Pixels of one map: pixels^2 on the flat sky, 12 nside^2 on the sphere."""
+    if cfg["maps"].get("geometry", "flat") == "sphere":
+        return 12 * int(cfg["maps"]["nside"]) ** 2
+    return int(cfg["maps"]["pixels"]) ** 2
+
+
 def map_area_deg2(cfg: Mapping) -> float:
     """Area of one map before masking: the flat field, or the whole sky."""
     if cfg["maps"].get("geometry", "flat") == "sphere":

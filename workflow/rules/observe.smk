@@ -37,7 +37,7 @@ rule observe:
     benchmark:
         "logs/benchmarks/observe/{model}_b{batch}.tsv"
     resources:
-        mem_mb=lambda w: 300 + config["maps"]["pixels"] ** 2 * 8 * 12 * (len(config["maps"]["source_redshifts"]) + 4) // 2**20,
+        mem_mb=lambda w: 300 + rtconfig.map_pixel_count(config) * 8 * 12 * (len(config["maps"]["source_redshifts"]) + 4) // 2**20,
     shell:
         "{RAYTRACE} observe --realization {params.realizations} --settings {params.settings:q} "
         "--maps {input:q} --output {params.outputs}{params.extra} 2> {log:q}"
