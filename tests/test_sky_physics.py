@@ -54,6 +54,8 @@ def test_uniform_light_cone_gives_zero_convergence(sky_suite, tmp_path, method):
     assert np.abs(shells).max() < 1e-12
     run = st.born if method == "born" else st.multi_plane
     maps = run(cosmo, sched, lambda k: shells[k], nside, chi_sources=[1100.0, 1200.0])
+    print(f"uniform light cone ({method}): max |kappa| = {np.abs(maps['kappa']).max():.1e}, "
+          f"max |gamma| = {max(np.abs(maps['gamma1']).max(), np.abs(maps['gamma2']).max()):.1e}")
     for key in ("kappa", "gamma1", "gamma2", "omega"):
         assert np.abs(maps[key]).max() < 1e-5, key
 
@@ -112,7 +114,8 @@ def test_point_mass_shear_and_deflection(sky_suite, tmp_path, method):
     for lo, hi in ((2.5, 4.0), (4.0, 8.0), (8.0, 15.0), (15.0, 40.0)):
         ring = (theta >= np.deg2rad(lo)) & (theta < np.deg2rad(hi))
         expected = np.mean(te2 / 4 / np.tan(theta[ring] / 2) ** 2)
-        assert g_t[ring].mean() == pytest.approx(expected, rel=0.02), (lo, hi)
+        print(f"point mass ({method}), {lo}-{hi} deg: gamma_t / expected = {g_t[ring].mean() / expected:.4f}")
+        assert g_t[ring].mean() == pytest.approx(expected, rel=0.01), (lo, hi)
         assert abs(g_x[ring].mean()) < 0.01 * expected
     if method == "multi-plane":
         # rays are deflected towards the mass by (theta_E^2 / 2) cot(theta / 2) (the gradient of psi)
@@ -126,7 +129,8 @@ def test_point_mass_shear_and_deflection(sky_suite, tmp_path, method):
         shift = np.arccos(np.clip(np.sum(beta.T * vec, axis=1), -1, 1))
         ring = (theta > np.deg2rad(2.5)) & (theta < np.deg2rad(8.0))
         expected = te2 / 2 / np.tan(theta[ring] / 2)
-        assert np.median(shift[ring] / expected) == pytest.approx(1.0, rel=0.02)
+        print(f"point mass: deflection / expected = {np.median(shift[ring] / expected):.4f}")
+        assert np.median(shift[ring] / expected) == pytest.approx(1.0, rel=0.01)
         closer = np.arccos(np.clip(beta.T @ axis, -1, 1)) < theta
         assert closer[ring].mean() > 0.99
 

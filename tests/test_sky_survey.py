@@ -184,3 +184,29 @@ def test_gaussian_field_statistics_on_the_sphere():
     edges = p.bin_edges
     expected = np.diff(norm.cdf(edges)) / np.diff(edges)
     assert np.allclose(p.values[0], expected, rtol=0.05)
+
+
+def test_user_healpix_shells_are_regraded(tmp_path):
+    # shells.kind healpix: a user file in the shell layout, NESTED at nside 16, read at the
+    # maps' nside 32 (healpy.ud_grade, the reference, which keeps the mean of a density map)
+    cfg = sphere_config()
+    cfg["maps"]["nside"] = 32
+    cfg["shells"] = {**cfg["shells"], "kind": "healpix", "files": str(tmp_path / "user_{realization}.h5")}
+    params = rc.model_parameters(cfg, "fiducial")
+    rng = np.random.default_rng(8)
+    delta = rng.standard_normal((3, hp.nside2npix(16))) * 0.1
+    user = tmp_path / "user_0.h5"
+    with h5py.File(user, "w") as f:
+        f["delta"] = delta
+        f["chi_lo_mpc_h"] = [0.0, 500.0, 1000.0]
+        f["chi_hi_mpc_h"] = [500.0, 1000.0, 1500.0]
+        f.attrs["ordering"] = "NESTED"
+    out = tmp_path / "shells.h5"
+    assert main(["shells", "--model", "fiducial", "--realization", "0", "--settings",
+                 json.dumps(shells_settings(cfg, params)), "--input", str(user), "--output", str(out)]) == 0
+    with h5py.File(out) as f:
+        assert f["delta"].shape == (3, hp.nside2npix(32))
+        expected = hp.ud_grade(delta[1], 32, order_in="NESTED", order_out="RING")
+        assert np.allclose(f["delta"][1], expected, rtol=1e-6, atol=1e-7)
+        assert list(f["chi_hi_mpc_h"][...]) == [500.0, 1000.0, 1500.0]
+        assert f["redshift"][2] == pytest.approx(float(rc.model_cosmology(cfg, "fiducial").redshift_at(1250.0)))

@@ -69,8 +69,8 @@ rule trace_sphere:
     benchmark:
         "logs/benchmarks/trace/{model}_b{batch}.tsv"
     resources:
-        # maps (4 per source) + multi-plane rays (18 doubles) and shell fields (9 floats) per pixel
-        mem_mb=lambda w: 300 + NPIX * (32 * len(MAP_LABELS) + 250) // 2**20,
+        # maps (4 doubles per map) + multi-plane rays, Jacobians, bases, weights, shell fields
+        mem_mb=lambda w: 300 + NPIX * (32 * len(MAP_LABELS) + 350) // 2**20,
     shell:
         "{RAYTRACE} trace-sphere --model {wildcards.model} --realization {params.realizations} "
         "--settings {params.settings:q} --shells {input:q} --output {params.outputs} 2> {log:q}"
