@@ -37,8 +37,8 @@ rule shells:
     benchmark:
         "logs/benchmarks/shells/{model}_b{batch}.tsv"
     resources:
-        # one snapshot (positions float32 twice while sorting, masses) + one shell map
-        mem_mb=lambda w: 300 + (config["suite"]["particles_per_side"] ** 3 * 40 + NPIX * 16) // 2**20,
+        # one snapshot (read, sorted into blocks, rotated: ~85 bytes per particle) + shell maps
+        mem_mb=lambda w: 300 + (config["suite"]["particles_per_side"] ** 3 * 90 + NPIX * 16) // 2**20,
     shell:
         "{RAYTRACE} shells --model {wildcards.model} --realization {params.realizations} "
         "--settings {params.settings:q} {params.inputs} --output {params.outputs} 2> {log:q}"
