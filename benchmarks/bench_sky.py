@@ -97,7 +97,7 @@ def main() -> None:
         vec, w = images(snap, lo, hi, rot, shift)
         chunk = 1 << 22
 
-        def floor():
+        def floor(vec=vec, w=w):
             acc = np.zeros(hp.nside2npix(nside))
             for i in range(0, len(w), chunk):
                 pix = hp.vec2pix(nside, vec[i : i + chunk, 0], vec[i : i + chunk, 1], vec[i : i + chunk, 2])
@@ -105,7 +105,6 @@ def main() -> None:
             return acc
 
         floor_times.append(median_time(floor, repeats))
-        del vec, w
     t_floor = sum(floor_times)
     rate = lambda t: n_images / t / 1e6  # noqa: E731
     print(f"shell building: {n_side}^3 particles in a {box:g} Mpc/h box, 4 shells of 128 Mpc/h at 512-1024 Mpc/h, "

@@ -6,7 +6,6 @@ import healpy as hp
 import numpy as np
 import pytest
 
-from raytrace.config import PlaneSchedule
 from raytrace.snapshots import RHO_CRIT_1E10_MSUN_H_PER_MPC_H3, iter_chunks, read_header
 from raytrace.spectra import power_spectrum_3d
 from raytrace.sky import cmb
@@ -81,7 +80,7 @@ def test_point_mass_shear_and_deflection(sky_suite, tmp_path, method):
     # band-limited harmonic transforms). The sign of gamma_t checks gamma1 > 0 along e_theta.
     cosmo = sky_suite.cosmo
     nside = 256
-    chi_l, chi_s = 1050.0, 2000.0
+    chi_l, chi_s = 975.0, 1800.0  # the mass at the centre of the shell [900, 1050)
     z_l = float(cosmo.redshift_at(chi_l))
     axis = np.asarray(hp.ang2vec(0.3, 1.0))
     et0, ep0 = st.tangent_basis(axis[None])
@@ -92,11 +91,16 @@ def test_point_mass_shear_and_deflection(sky_suite, tmp_path, method):
     mass = 3e6  # 3e16 Msun/h in all: theta_E ~ 0.1 deg
     path = lightcone_file(tmp_path / "point.h5", chi_l * dirs, np.full(len(dirs), mass / len(dirs)),
                           omega_m=cosmo.Omega_m, chi_max=chi_s, deposited_fraction=1e-12)
-    sched = shell_schedule(cosmo, 100.0, chi_s, [], whole=True)
+    sched = shell_schedule(cosmo, 150.0, chi_s, [], whole=True)
     shells = [s.delta for s in build_lightcone(path, sched, nside, omega_m=cosmo.Omega_m)]
+    k_mass = int(np.searchsorted(sched.chi_hi, chi_l))
+    # the other shells hold only the 1e-12 background: set to zero, they are skipped (multi-plane),
+    # and a second source inside one of them (1700 Mpc/h) still gets the mass's lensing
     run = st.born if method == "born" else st.multi_plane
-    maps = run(cosmo, sched, lambda k: shells[k], nside, chi_sources=[chi_s])
+    maps = run(cosmo, sched, lambda k: shells[k] if k == k_mass else np.zeros_like(shells[k]), nside,
+               chi_sources=[chi_s, 1700.0])
     te2 = einstein_radius_sq(mass, cosmo.h, chi_l, chi_s, z_l)
+    te2_inner = einstein_radius_sq(mass, cosmo.h, chi_l, 1700.0, z_l)
     # the convergence integrates to pi theta_E^2 (the mass); with the monopole removed (the
     # multi-plane potential) a uniform -theta_E^2 / 4 is added (the mass spread over the sky)
     vec = np.array(hp.pix2vec(nside, np.arange(hp.nside2npix(nside)))).T
@@ -117,10 +121,12 @@ def test_point_mass_shear_and_deflection(sky_suite, tmp_path, method):
         print(f"point mass ({method}), {lo}-{hi} deg: gamma_t / expected = {g_t[ring].mean() / expected:.4f}")
         assert g_t[ring].mean() == pytest.approx(expected, rel=0.01), (lo, hi)
         assert abs(g_x[ring].mean()) < 0.01 * expected
+        g_inner = -(maps["gamma1"][1] * np.cos(2 * a) + maps["gamma2"][1] * np.sin(2 * a))
+        assert g_inner[ring].mean() == pytest.approx(expected * te2_inner / te2, rel=0.01), (lo, hi)
     if method == "multi-plane":
         # rays are deflected towards the mass by (theta_E^2 / 2) cot(theta / 2) (the gradient of psi)
         rays = st._Rays(nside)
-        k = int(np.searchsorted(sched.chi_hi, chi_l))
+        k = k_mass
         fields = st.shell_fields(shells[k], float(sched.chi[k]), 1.0, float(sched.thickness[k]),
                                  lmax=st.default_lmax(nside))
         rays.lens(float(sched.chi[k]), fields, st.lens_strength(cosmo, float(sched.z[k])))

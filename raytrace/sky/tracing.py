@@ -473,14 +473,20 @@ def multi_plane(cosmo: Cosmology, schedule: PlaneSchedule, load: ShellLoader, ns
         lo, hi = float(schedule.chi_lo[k]), float(schedule.chi_hi[k])
         delta = load(k)
         strength = lens_strength(cosmo, float(schedule.z[k]))
-        fields = shell_fields(delta, float(schedule.chi[k]), 1.0, hi - lo, lmax=lmax, iterations=iterations)
+        empty = not np.any(delta)  # an empty shell does not lens: the rays only drift through it
+        fields = None if empty else shell_fields(delta, float(schedule.chi[k]), 1.0, hi - lo, lmax=lmax,
+                                                 iterations=iterations)
         for i, p in enumerate(paths):
             if p.partial is not None and p.partial.plane == k:
-                branch = rays.copy()
-                branch.lens(p.partial.chi, fields, p.partial.strength)
-                record(i, branch, p.chi_s)
+                if empty:
+                    record(i, rays, p.chi_s)
+                else:
+                    branch = rays.copy()
+                    branch.lens(p.partial.chi, fields, p.partial.strength)
+                    record(i, branch, p.chi_s)
         if any(k < p.full for p in paths) or (len(source_bins) and np.any(boundary_w[:, k:] > 0)):
-            rays.lens(float(schedule.chi[k]), fields, strength)
+            if not empty:
+                rays.lens(float(schedule.chi[k]), fields, strength)
             for i, p in enumerate(paths):
                 if p.full == k + 1 and p.partial is None:
                     record(i, rays, p.chi_s)
