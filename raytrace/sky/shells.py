@@ -395,21 +395,45 @@ class Shell:
     images: int  # particles (or particle images) deposited
 
 
+class _SnapshotCache:
+    """Block-sorted snapshots kept between the realisations of one job, within a memory budget.
+
+    A job traces a batch of realisations from the same snapshots; small suites are then read
+    and sorted once per job. Only the most recent snapshot is kept when the budget is exceeded.
+    """
+
+    def __init__(self, budget_bytes: int = 512 * 2**20):
+        self.budget = budget_bytes
+        self._items: dict = {}
+
+    def get(self, key):
+        return self._items.get(key)
+
+    def put(self, key, snap: TiledSnapshot) -> None:
+        size = lambda t: t.positions.nbytes + t.masses.nbytes + t.offsets.nbytes  # noqa: E731
+        while self._items and sum(size(t) for t in self._items.values()) + size(snap) > self.budget:
+            self._items.pop(next(iter(self._items)))
+        self._items[key] = snap
+
+
+_SNAPSHOTS = _SnapshotCache()
+
+
 def build_tiled(schedule: PlaneSchedule, choice: ShellChoice, snapshots: Sequence[Sequence[str | Path]], nside: int,
                 *, species: Sequence[int] = (1,), fmt: str = "hdf5", chunk_particles: int = 1 << 21,
                 blocks_per_side: int = 8, cone: tuple[np.ndarray, float] | None = None,
                 log: Callable[[str], None] = lambda s: None) -> Iterator[Shell]:
     """Shells of one realisation from the tiled snapshots, in order (one snapshot in memory)."""
-    loaded: dict[int, TiledSnapshot] = {}
     t0 = time.perf_counter()
     for k in range(schedule.n_planes):
         s = int(choice.snapshot[k])
-        if s not in loaded:
-            loaded.clear()
-            loaded[s] = TiledSnapshot.read(snapshots[s], species=species, fmt=fmt, chunk_particles=chunk_particles,
-                                           blocks_per_side=blocks_per_side)
-            log(f"snapshot {s} (z = {loaded[s].redshift:g}): {len(loaded[s].positions)} particles sorted into blocks")
-        snap = loaded[s]
+        key = (tuple(str(f) for f in snapshots[s]), tuple(species), fmt, int(blocks_per_side))
+        snap = _SNAPSHOTS.get(key)
+        if snap is None:
+            snap = TiledSnapshot.read(snapshots[s], species=species, fmt=fmt, chunk_particles=chunk_particles,
+                                      blocks_per_side=blocks_per_side)
+            _SNAPSHOTS.put(key, snap)
+            log(f"snapshot {s} (z = {snap.redshift:g}): {len(snap.positions)} particles sorted into blocks")
         lo, hi = float(schedule.chi_lo[k]), float(schedule.chi_hi[k])
         sums, n = snap.deposit(lo, hi, choice.rotation[k], choice.shift[k], nside, cone=cone)
         delta = contrast_from_sums(sums, lo, hi, snap.rho_dep, snap.rho_m)

@@ -277,6 +277,18 @@ def _resize_alm(alm: np.ndarray, lmax_in: int, lmax_out: int) -> np.ndarray:
 
 # ------------------------------------------------------------------------------------
 # multi-plane
+_BASES: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = {}
+
+
+def pixel_bases(nside: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Pixel-centre unit vectors and their (e_theta, e_phi), cached for the last nside used."""
+    if nside not in _BASES:
+        _BASES.clear()
+        n0 = pixel_vectors(nside)
+        _BASES[nside] = (n0, *tangent_basis(n0))
+    return _BASES[nside]
+
+
 def shell_fields(delta: np.ndarray, chi: float, strength: float, thickness: float, *, lmax: int,
                  iterations: int = 1) -> np.ndarray:
     r"""Cartesian deflection (3) and tidal tensor (6: xx, yy, zz, xy, xz, yz) of one shell, (npix, 9) float32.
@@ -297,7 +309,7 @@ def shell_fields(delta: np.ndarray, chi: float, strength: float, thickness: floa
     e = phi * (-0.5 * np.sqrt(np.maximum((ell + 2) * (ell + 1) * ell * (ell - 1), 0.0)))
     q, u = hp.alm2map_spin([e, np.zeros_like(e)], nside, 2, lmax)
     h_tt, h_pp, h_tp = 0.5 * lap + q, 0.5 * lap - q, u
-    et, ep = tangent_basis(pixel_vectors(nside))
+    _, et, ep = pixel_bases(nside)
     out = np.empty((delta.size, 9), dtype=np.float32)
     out[:, 0:3] = (d_theta[:, None] * et + d_phi[:, None] * ep) / chi
     inv2 = 1.0 / chi**2
@@ -402,8 +414,7 @@ class _Rays:
 
     def __init__(self, nside: int):
         self.nside = nside
-        self.n0 = pixel_vectors(nside)
-        self.e1, self.e2 = tangent_basis(self.n0)
+        self.n0, self.e1, self.e2 = pixel_bases(nside)
         n = self.n0.shape[0]
         self.state = np.zeros((18, n))
         self.state[3:6] = self.n0.T
