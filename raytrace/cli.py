@@ -26,8 +26,11 @@ class Log:
     def __init__(self, stage: str):
         self.stage = stage
         self.t0 = time.perf_counter()
+        self.muted = False  # set on MPI ranks other than 0
 
     def __call__(self, message: str) -> None:
+        if self.muted:
+            return
         print(f"[{self.stage} {time.perf_counter() - self.t0:7.1f} s] {message}", file=sys.stderr, flush=True)
 
     def finish(self) -> None:
@@ -72,20 +75,33 @@ def cmd_simulate(args, log: Log) -> None:
 
 def cmd_slice(args, log: Log) -> None:
     from .hdf5 import atomic_h5
+    from .parallel import collective, world
     from .planes import slice_snapshot, write_planes
     from .snapshots import read_header
 
+    comm = world()
     s = _settings(args.settings)
-    header = read_header(args.snapshot, s.get("format", "hdf5"), s.get("length_unit"))
-    log(f"snapshot z = {header.redshift:g}, box {header.box_mpc_h:g} Mpc/h, particles {header.n_total}")
+    log.muted = comm.rank != 0  # one log: rank 0's
+    # rank 0 reads the headers (one pass over the files' markers) and hands them to the others
+    header = comm.bcast(collective(comm, lambda: read_header(args.snapshot, s.get("format", "hdf5"), s.get("length_unit"))
+                                   if comm.rank == 0 else None))
+    log(f"snapshot z = {header.redshift:g}, box {header.box_mpc_h:g} Mpc/h, particles {header.n_total}, "
+        f"format {header.fmt}" + (f", {comm.size} MPI ranks" if comm.size > 1 else ""))
+    omega_m = s.get("omega_m")
+    if omega_m is not None and abs(header.omega_m / omega_m - 1) > 1e-3:
+        log(f"note: the header's Omega0 = {header.omega_m:g} differs from the model's Omega_m = {omega_m:g}; "
+            "the contrast is taken relative to the model's")
     planes = slice_snapshot(
         header, grid=s["grid"], thickness_mpc_h=s["thickness_mpc_h"], species=s["species"],
-        assignment=s["assignment"], fmt=s.get("format", "hdf5"), chunk_particles=s["chunk_particles"],
-        workers=_workers(), log=log,
+        assignment=s["assignment"], chunk_particles=s["chunk_particles"], workers=_workers(),
+        omega_m=omega_m, log=log, comm=comm,
     )
-    with atomic_h5(args.output, stage="slice", settings=s, inputs=args.snapshot) as f:
-        write_planes(f, planes)
-    log(f"{planes.n_slabs} slabs x 3 axes of {planes.grid}^2 written to {args.output}")
+    if comm.rank == 0:
+        with atomic_h5(args.output, stage="slice", settings=s, inputs=args.snapshot) as f:
+            write_planes(f, planes)
+        log(f"{planes.n_slabs} slabs x 3 axes of {planes.grid}^2 written to {args.output}; "
+            f"deposited species {s['species']} hold {planes.deposited_fraction:.4f} of the mean matter density")
+    comm.barrier()
 
 
 def cmd_trace(args, log: Log) -> None:
@@ -266,6 +282,19 @@ COMMANDS = {"simulate": cmd_simulate, "slice": cmd_slice, "trace": cmd_trace, "o
             "measure": cmd_measure}
 
 
+def _rank() -> int:
+    from .parallel import launched_by_mpi
+
+    if not launched_by_mpi():
+        return 0
+    try:
+        from mpi4py import MPI
+
+        return MPI.COMM_WORLD.Get_rank()
+    except ImportError:
+        return 0
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     try:
@@ -277,7 +306,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         log.finish()
         return 0
     except RaytraceError as exc:
-        print(f"raytrace {args.command}: error: {exc}", file=sys.stderr)
+        if _rank() == 0:  # under MPI every rank has the error; one line is printed
+            print(f"raytrace {args.command}: error: {exc}", file=sys.stderr)
         return 2
 
 
