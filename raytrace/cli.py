@@ -57,7 +57,14 @@ def cmd_validate(args) -> None:
     from . import config
 
     cfg = config.load(args.config)
-    print(json.dumps(cfg, indent=1) if args.show else f"{args.config}: valid")
+    found = ""
+    if cfg["suite"]["kind"] == "files":  # the snapshots are part of what must be valid
+        from .filesuite import discover
+
+        suite = discover(cfg)
+        counts = ", ".join(f"{m}: {len(s)}" for m, s in suite.models.items())
+        found = f" (snapshots {counts}; box {suite.box_mpc_h:g} Mpc/h)"
+    print(json.dumps(cfg, indent=1) if args.show else f"{args.config}: valid{found}")
 
 
 def cmd_simulate(args, log: Log) -> None:
@@ -69,7 +76,8 @@ def cmd_simulate(args, log: Log) -> None:
     generate_model(
         cosmo, box_mpc_h=s["box_mpc_h"], particles_per_side=s["particles_per_side"],
         snapshot_redshifts=s["snapshot_redshifts"], seed=s["seed"], directory=args.outdir,
-        files_per_snapshot=s["files_per_snapshot"], lpt_order=s["lpt_order"], workers=_workers(), log=log,
+        files_per_snapshot=s["files_per_snapshot"], lpt_order=s["lpt_order"],
+        neutrino_particles=bool(s.get("neutrino_particles", False)), workers=_workers(), log=log,
     )
 
 

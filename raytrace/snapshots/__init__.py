@@ -12,6 +12,7 @@ for parallel slicing, gives each MPI rank its contiguous share of the particles.
 from __future__ import annotations
 
 import importlib
+import re
 import struct
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -67,6 +68,41 @@ class Chunk:
     species: int
     positions: np.ndarray  # (n, 3) float, Mpc/h, inside [0, box)
     masses: np.ndarray  # (n,) float, 1e10 Msun/h
+
+
+@dataclass(frozen=True)
+class FileSummary:
+    """The header fields of one file that say which snapshot it belongs to."""
+
+    path: Path
+    redshift: float
+    box_mpc_h: float
+    num_files: int
+    n_total: dict[int, int]
+
+
+def file_summary(path: str | Path, fmt: str, length_unit: str | None = None) -> FileSummary:
+    """Redshift, box, file count and particle totals from the header of one file."""
+    return reader_module(fmt).file_summary(Path(path), length_unit)
+
+
+_NUMBERED = re.compile(r"^(?P<stem>.*)\.(?P<index>\d+)(?P<ext>\.hdf5|\.h5)?$")
+
+
+def file_number(path: str | Path) -> tuple[str, int] | None:
+    """(base name, file number) of ``name.<n>`` or ``name.<n>.hdf5``, else None."""
+    m = _NUMBERED.match(Path(path).name)
+    return (m["stem"] + (m["ext"] or ""), int(m["index"])) if m else None
+
+
+def missing_file_names(files: Sequence[Path], num_files: int) -> list[str]:
+    """Names of the files ``name.0 .. name.<num_files-1>`` (same suffix) absent from ``files``."""
+    keyed = [file_number(f) for f in files]
+    if not files or any(k is None for k in keyed) or len({k[0] for k in keyed}) != 1:
+        return []
+    m = _NUMBERED.match(Path(files[0]).name)
+    have = {k[1] for k in keyed}
+    return [str(Path(files[0]).with_name(f"{m['stem']}.{i}{m['ext'] or ''}")) for i in range(num_files) if i not in have]
 
 
 @dataclass(frozen=True)

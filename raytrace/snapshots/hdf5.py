@@ -23,7 +23,17 @@ import h5py
 import numpy as np
 
 from ..errors import RaytraceError
-from . import LENGTH_UNITS, Chunk, ChunkSpec, SnapshotHeader, check_chunk, check_species, chunk_plan
+from . import (
+    LENGTH_UNITS,
+    Chunk,
+    ChunkSpec,
+    FileSummary,
+    SnapshotHeader,
+    check_chunk,
+    check_species,
+    chunk_plan,
+    missing_file_names,
+)
 
 REQUIRED = (
     "BoxSize",
@@ -93,6 +103,27 @@ def _mass_factor(f: h5py.File, path: Path) -> float:
     return _snap(unit_g / MASS_1E10_MSUN_IN_G, 1.0)
 
 
+def file_summary(path: Path, length_unit: str | None) -> FileSummary:
+    """The snapshot-identifying header fields of one file."""
+    with _open(path) as f:
+        if "Header" not in f:
+            raise RaytraceError(f"{path}: no Header group")
+        attrs = f["Header"].attrs
+        for k in ("Redshift", "BoxSize", "NumFilesPerSnapshot", "NumPart_Total"):
+            if k not in attrs:
+                raise RaytraceError(f"{path}: Header is missing attribute {k}")
+        total = np.asarray(attrs["NumPart_Total"], dtype=np.int64)
+        if "NumPart_Total_HighWord" in attrs:
+            total = total + (np.asarray(attrs["NumPart_Total_HighWord"], dtype=np.int64) << 32)
+        return FileSummary(
+            path=path,
+            redshift=float(attrs["Redshift"]),
+            box_mpc_h=float(attrs["BoxSize"]) * _length_factor(f, path, length_unit),
+            num_files=int(attrs["NumFilesPerSnapshot"]),
+            n_total={t: int(n) for t, n in enumerate(total) if n > 0},
+        )
+
+
 def read_header(files: Sequence[Path], length_unit: str | None) -> SnapshotHeader:
     per_file, first = [], None
     for path in files:
@@ -141,8 +172,10 @@ def read_header(files: Sequence[Path], length_unit: str | None) -> SnapshotHeade
                         )
     assert first is not None
     if len(files) != n_files:
+        missing = missing_file_names(files, n_files)
+        detail = f" (missing: {', '.join(missing[:3])}{', ...' if len(missing) > 3 else ''})" if missing else ""
         raise RaytraceError(
-            f"{files[0]}: NumFilesPerSnapshot is {n_files} but {len(files)} file(s) of this snapshot were found"
+            f"{files[0]}: NumFilesPerSnapshot is {n_files} but {len(files)} file(s) of this snapshot were found{detail}"
         )
     for t, n in first.n_total.items():
         found = sum(pf.get(t, 0) for pf in per_file)

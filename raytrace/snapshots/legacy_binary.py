@@ -49,7 +49,7 @@ from typing import BinaryIO, Iterator, Mapping, Sequence
 import numpy as np
 
 from ..errors import RaytraceError
-from . import LENGTH_UNITS, Chunk, ChunkSpec, SnapshotHeader, check_chunk, check_species, chunk_plan
+from . import LENGTH_UNITS, Chunk, ChunkSpec, FileSummary, SnapshotHeader, check_chunk, check_species, chunk_plan
 
 N_TYPES = 6
 HEADER_BYTES = 256
@@ -332,6 +332,19 @@ def _scan_file(path: Path) -> tuple[_RawHeader, _FileLayout, bool]:
         mass_dtype=mass_dtype,
     )
     return hdr, layout, labelled
+
+
+def file_summary(path: Path, length_unit: str | None) -> FileSummary:
+    """The snapshot-identifying header fields of one file (every record marker checked)."""
+    factor = _length_factor(length_unit, path)
+    hdr, _, _ = _scan_file(path)
+    return FileSummary(
+        path=path,
+        redshift=hdr.redshift,
+        box_mpc_h=hdr.box * factor,
+        num_files=hdr.num_files,
+        n_total={t: n for t, n in enumerate(hdr.n_total) if n > 0},
+    )
 
 
 def read_header(files: Sequence[Path], length_unit: str | None) -> LegacyHeader:
