@@ -8,8 +8,9 @@ Lengths are comoving, in h^-1 times ``UnitLength_in_cm`` when ``Header`` (or a
 ``Units``/``Parameters`` group) carries it, else in the configured ``length_unit``,
 else in Mpc/h; a configured unit that contradicts ``UnitLength_in_cm`` is an error.
 Masses are in h^-1 times ``UnitMass_in_g`` when it is given, else in 1e10 Msun/h (the
-layout's usual unit). Values within 1e-4 of 1 kpc, 1 Mpc or 1e10 Msun are taken as
-exactly those units (codes round the parsec and the solar mass differently).
+layout's usual unit). Values within 0.1% of 1 kpc, 1 Mpc or 1e10 Msun are taken as
+exactly those units (codes round the parsec and the solar mass differently: 1.989e43 g
+for 1e10 Msun is 3e-4 above the IAU value).
 Several species are read with their own masses: ``PartType<t>/Masses`` where present,
 else ``MassTable[t]``.
 """
@@ -53,7 +54,7 @@ MPC_IN_CM = 3.0856775814913673e24
 #: 1e10 nominal solar masses in g (IAU 2015 Resolution B3, GM_sun over CODATA 2018 G)
 MASS_1E10_MSUN_IN_G = 1.98841e43
 #: relative tolerance within which a unit is taken as the named one
-UNIT_SNAP = 1e-4
+UNIT_SNAP = 1e-3
 
 
 def _open(path: Path) -> h5py.File:
