@@ -25,7 +25,7 @@ from raytrace.snapshots import legacy_binary as lb
 from raytrace.snapshots.hdf5 import write_snapshot
 from raytrace.spectra import power_spectrum_3d
 
-from conftest import FIDUCIAL
+from conftest import FIDUCIAL, as_legacy
 
 ROOT = Path(__file__).resolve().parents[1]
 PLANE_KEYS = ("delta", "dphi_dx", "dphi_dy", "d2phi_dxx", "d2phi_dyy", "d2phi_dxy")
@@ -179,8 +179,7 @@ def neutrino_suite(tmp_path_factory):
     cosmo = Cosmology(**FIDUCIAL)
     kw = dict(box_mpc_h=1024.0, particles_per_side=64, snapshot_redshifts=[0.5], seed=21, neutrino_particles=True)
     h5 = generate_model(cosmo, directory=root / "h5", **kw)[0]
-    lb_files = generate_model(cosmo, directory=root / "lb", fmt="legacy-binary", **kw)[0]
-    return cosmo, h5, lb_files
+    return cosmo, h5, as_legacy(h5, root / "lb")
 
 
 def test_neutrino_particles_layout(neutrino_suite):
@@ -319,8 +318,7 @@ def mixed_snapshot(tmp_path_factory):
 
 
 @needs_mpi
-@pytest.mark.parametrize("fmt", ["hdf5", "legacy-binary"])
-@pytest.mark.parametrize("assignment", ["cic", "tsc"])
+@pytest.mark.parametrize("fmt, assignment", [("hdf5", "cic"), ("legacy-binary", "tsc")])
 def test_mpi_two_ranks_equal_serial(mixed_snapshot, fmt, assignment):
     # MPI slicing (2 ranks: particles shared, planes reduced, rank 0 writes) gives the serial
     # planes to float32 rounding (sums are float64 in both; only their order differs).
