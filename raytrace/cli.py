@@ -88,6 +88,7 @@ def cmd_slice(args, log: Log) -> None:
     from .snapshots import read_header
 
     comm = world()
+    t_start = time.perf_counter()  # after imports and MPI start-up
     s = _settings(args.settings)
     log.muted = comm.rank != 0  # one log: rank 0's
     # rank 0 reads the headers (one pass over the files' markers) and hands them to the others
@@ -110,6 +111,8 @@ def cmd_slice(args, log: Log) -> None:
         log(f"{planes.n_slabs} slabs x 3 axes of {planes.grid}^2 written to {args.output}; "
             f"deposited species {s['species']} hold {planes.deposited_fraction:.4f} of the mean matter density")
     comm.barrier()
+    log(f"slicing took {time.perf_counter() - t_start:.2f} s (headers, deposit, reduction, potentials, writing; "
+        f"{comm.size} rank{'s' if comm.size > 1 else ''})")
 
 
 def cmd_trace(args, log: Log) -> None:

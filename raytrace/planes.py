@@ -108,6 +108,7 @@ def deposit_snapshot(
             kernel(chunk.positions, chunk.masses, box, grid, n_slabs, mass_grid)
             totals[0] += float(chunk.masses.sum())
             totals[1] += len(chunk.masses)
+            del chunk  # peak memory: the grids and one chunk, not two
             now = time.perf_counter()
             if now - last > 5.0:  # progress every few seconds, not every chunk
                 log(f"deposited {totals[1]} particles{_of_rank(comm)} ({now - t0:.1f} s)")

@@ -229,7 +229,9 @@ def read_chunks(header: SnapshotHeader, specs: Sequence[ChunkSpec]) -> Iterator[
                 pos *= header.length_to_mpc_h
             chunk = Chunk(t, pos, m)
             check_chunk(chunk, header, path)
+            del pos, m
             yield chunk
+            del chunk  # hold no particles while the next chunk is read
     finally:
         if f is not None:
             f.close()

@@ -444,7 +444,9 @@ def read_chunks(header: SnapshotHeader, specs: Sequence[ChunkSpec]) -> Iterator[
                 m = np.full(spec.count, lay.mass[t])
             chunk = Chunk(t, pos, m)
             check_chunk(chunk, header, path)
+            del raw, pos, m
             yield chunk
+            del chunk  # hold no particles while the next chunk is read
     except OSError as exc:
         raise RaytraceError(f"{path}: cannot read snapshot file ({exc})") from None
     finally:
