@@ -112,33 +112,37 @@ def test_shot_noise_of_random_particles(assignment):
     assert abs(np.sum(p_sub * modes) / np.sum(expected * modes)) < 0.03
 
 
+MESH = 64
+
+
 @pytest.fixture(scope="module")
-def snapshot_particles(suite):
+def snapshot_and_input(suite):
+    """The z = 0.5 demo particles, k bins up to 0.6 of the 64^3 mesh's Nyquist wavenumber, and
+    camb's linear cb power on the snapshot's phases averaged over the same modes."""
     z = 0.5
     header = read_header(suite.snapshots[suite.snapshot_z.index(z)])
-    return z, np.concatenate([c.positions for c in iter_chunks(header, [1])])
+    pos = np.concatenate([c.positions for c in iter_chunks(header, [1])])
+    edges = np.linspace(0.03, 0.6 * np.pi * MESH / suite.box, 10)
+    lp = suite.cosmo.linear_power([z])
+    expected = realised_input_power(demo.white_noise_modes(suite.n_particles, 11), suite.box,
+                                    lambda kk: lp.cb(z, kk), edges)
+    return pos, edges, expected
 
 
 @pytest.mark.parametrize("assignment", ["ngp", "cic", "tsc"])
-def test_window_corrected_spectrum_recovers_the_input(suite, snapshot_particles, assignment):
+def test_window_corrected_spectrum_recovers_the_input(suite, snapshot_and_input, assignment):
     # The demo snapshot (128^3 particles, camb's linear cb spectrum at z = 0.5 on known phases)
     # measured on a coarse 64^3 mesh, up to 0.6 of the mesh Nyquist wavenumber where the window
     # matters: dividing by W^2 = prod sinc^(2p)(k_i Delta / 2) (Hockney & Eastwood 1988, ch. 5)
     # recovers the input within 10% for every scheme, while without it TSC loses more than
     # a quarter of the power in the last bin. (Aliasing, neglected, is a few per cent for NGP
     # there: Jing 2005.) Lattice initial conditions: no shot noise to subtract (common practice).
-    z, pos = snapshot_particles
-    mesh = 64
-    k_nyq = np.pi * mesh / suite.box
-    edges = np.linspace(0.03, 0.6 * k_nyq, 10)
-    lp = suite.cosmo.linear_power([z])
-    expected = realised_input_power(demo.white_noise_modes(suite.n_particles, 11), suite.box,
-                                    lambda kk: lp.cb(z, kk), edges)
-    _, p, _ = power_spectrum_3d(pos, np.ones(len(pos)), suite.box, mesh, edges, subtract_shot_noise=False,
+    pos, edges, expected = snapshot_and_input
+    _, p, _ = power_spectrum_3d(pos, np.ones(len(pos)), suite.box, MESH, edges, subtract_shot_noise=False,
                                 assignment=assignment)
     ratio = p / expected
     assert np.all(np.abs(ratio - 1) < 0.10), ratio
     if assignment == "tsc":
-        _, raw, _ = power_spectrum_3d(pos, np.ones(len(pos)), suite.box, mesh, edges, subtract_shot_noise=False,
+        _, raw, _ = power_spectrum_3d(pos, np.ones(len(pos)), suite.box, MESH, edges, subtract_shot_noise=False,
                                       deconvolve=False, assignment=assignment)
         assert raw[-1] / expected[-1] < 0.75

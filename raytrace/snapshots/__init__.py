@@ -247,13 +247,22 @@ def iter_chunks(
     yield from reader_module(fmt).read_chunks(header, chunk_plan(header, species, chunk_size, rank, size))
 
 
+def _position_range(pos: np.ndarray) -> tuple[bool, float, float]:
+    """(all finite, min, max) of ``pos`` in one compiled pass."""
+    from ._check import position_range
+
+    finite, lo, hi = position_range(np.ascontiguousarray(pos))
+    return bool(finite), float(lo), float(hi)
+
+
 def check_chunk(chunk: Chunk, header: SnapshotHeader, source: str | Path = "") -> None:
     """Reject NaN or out-of-box positions with the file named."""
     pos = chunk.positions
     where = source or (header.files[0] if len(header.files) == 1 else header.files[0].parent)
-    if not np.all(np.isfinite(pos)):
+    finite, lo, hi = _position_range(pos)
+    if not finite:
         raise RaytraceError(f"{where}: non-finite particle positions in species {chunk.species}")
-    lo, hi = float(pos.min(initial=0.0)), float(pos.max(initial=0.0))
+    lo, hi = min(lo, 0.0), max(hi, 0.0)
     # a tolerance of one part in 1e6 allows float32 rounding at the box edge
     if lo < -1e-6 * header.box_mpc_h or hi > header.box_mpc_h * (1 + 1e-6):
         raise RaytraceError(
