@@ -200,7 +200,7 @@ def bench_memory(pos: np.ndarray, grid: int, thickness: float, repeats: int, wor
     p1, p2 = statistics.median(peaks["N"]), statistics.median(peaks["2N"])
     grids = (3 * n_slabs * grid**2 * (8 + 6 * 4)) / 2**20  # float64 accumulator + six float32 outputs
     file_mb = sum(f.stat().st_size for f in big) / 2**20
-    print(f"peak memory of a slicing job (ru_maxrss of the job), {grid}^2 planes x 3 x {n_slabs}, chunks of 2^21, "
+    print(f"peak memory of a slicing job (its own VmHWM, as the job logs it), {grid}^2 planes x 3 x {n_slabs}, chunks of 2^21, "
           f"medians of {repeats}")
     print(f"  N  = {n:>10} particles: {p1:8.0f} MiB")
     print(f"  2N = {2 * n:>10} particles: {p2:8.0f} MiB   (snapshot files {file_mb:.0f} MiB)")

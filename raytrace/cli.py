@@ -34,8 +34,23 @@ class Log:
         print(f"[{self.stage} {time.perf_counter() - self.t0:7.1f} s] {message}", file=sys.stderr, flush=True)
 
     def finish(self) -> None:
-        peak_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-        self(f"done: wall time {time.perf_counter() - self.t0:.2f} s, peak memory {peak_kb / 1024:.1f} MiB")
+        self(f"done: wall time {time.perf_counter() - self.t0:.2f} s, peak memory {peak_memory_mib():.1f} MiB")
+
+
+def peak_memory_mib() -> float:
+    """Peak resident memory of this process image.
+
+    Linux's ``VmHWM`` where available: ``ru_maxrss`` survives fork and exec, so a job
+    started by a large parent (Snakemake, a benchmark) would report the parent's size.
+    """
+    try:
+        with open("/proc/self/status") as f:
+            for line in f:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
 def _settings(text: str) -> dict:
