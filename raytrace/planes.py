@@ -62,6 +62,8 @@ class PlaneSet:
     redshift: float
     omega_m: float
     deposited_fraction: float
+    #: transverse mass assignment (its window is sinc^p per axis, raytrace.deposit.WINDOW_ORDER)
+    assignment: str = "cic"
 
     @property
     def grid(self) -> int:
@@ -206,7 +208,10 @@ def slice_snapshot(
         fmt=fmt, chunk_particles=chunk_particles, log=log, comm=comm,
     )
     om = header.omega_m if omega_m is None else float(omega_m)
-    return planes_from_mass(mass_grid, total, header.box_mpc_h, header.redshift, om, workers=workers, comm=comm)
+    planes = planes_from_mass(mass_grid, total, header.box_mpc_h, header.redshift, om, workers=workers, comm=comm)
+    if planes is not None:
+        planes.assignment = assignment
+    return planes
 
 
 def planes_from_mass(
@@ -273,5 +278,6 @@ def write_planes(f, planes: PlaneSet) -> None:
     f.attrs["redshift"] = planes.redshift
     f.attrs["omega_m"] = planes.omega_m
     f.attrs["deposited_fraction"] = planes.deposited_fraction
+    f.attrs["assignment"] = planes.assignment
     f.attrs["plane_axes"] = np.array(PLANE_AXES)
     f.attrs["layout"] = "arrays [axis, slab, iy, ix]; plane x, y = box axes plane_axes[axis]; potential: lap(phi) = delta * thickness"
