@@ -103,7 +103,7 @@ def cmd_slice(args, log: Log) -> None:
     from .snapshots import read_header
 
     comm = world()
-    t_start = time.perf_counter()  # after imports and MPI start-up
+    t_start, cpu_start = time.perf_counter(), time.process_time()  # after imports and MPI start-up
     s = _settings(args.settings)
     log.muted = comm.rank != 0  # one log: rank 0's
     # rank 0 reads the headers (one pass over the files' markers) and hands them to the others
@@ -125,9 +125,9 @@ def cmd_slice(args, log: Log) -> None:
             write_planes(f, planes)
         log(f"{planes.n_slabs} slabs x 3 axes of {planes.grid}^2 written to {args.output}; "
             f"deposited species {s['species']} hold {planes.deposited_fraction:.4f} of the mean matter density")
-    comm.barrier()
+    cpu = comm.allgather(time.process_time() - cpu_start)
     log(f"slicing took {time.perf_counter() - t_start:.2f} s (headers, deposit, reduction, potentials, writing; "
-        f"{comm.size} rank{'s' if comm.size > 1 else ''})")
+        f"{comm.size} rank{'s' if comm.size > 1 else ''}); cpu time per rank: {', '.join(f'{c:.2f}' for c in cpu)} s")
 
 
 def cmd_trace(args, log: Log) -> None:

@@ -60,6 +60,9 @@ class SerialComm:
     def bcast(self, value: T) -> T:
         return value
 
+    def allgather(self, value: T) -> list[T]:
+        return [value]
+
     def gather_arrays(
         self, arrays: dict[int, np.ndarray], out: np.ndarray | None, n: int, owner: Callable[[int], int]
     ) -> None:
@@ -103,6 +106,9 @@ class MPIComm(SerialComm):
 
     def bcast(self, value: T) -> T:
         return self.comm.bcast(value, root=0)
+
+    def allgather(self, value: T) -> list[T]:
+        return self.comm.allgather(value)
 
     def gather_arrays(
         self, arrays: dict[int, np.ndarray], out: np.ndarray | None, n: int, owner: Callable[[int], int]
