@@ -3,7 +3,8 @@
 Every reader turns the files of one snapshot into a :class:`SnapshotHeader` and reads
 :class:`Chunk` objects (positions in Mpc/h, masses in 1e10 Msun/h, one species per
 chunk), so that slicing never holds more than one chunk of particles. A new format is
-one module here exposing ``read_header(files, length_unit)`` and
+one module here exposing ``read_header(files, length_unit)``,
+``file_summary(path, length_unit)`` (what groups files into snapshots) and
 ``read_chunks(header, specs)`` (the particles of each :class:`ChunkSpec`, in order),
 plus its name in ``FORMATS``. This package plans the chunks (:func:`chunk_plan`) and,
 for parallel slicing, gives each MPI rank its contiguous share of the particles.
@@ -140,6 +141,8 @@ def chunk_plan(
     """
     if chunk_size < 1:
         raise RaytraceError(f"chunk_size: must be at least 1, got {chunk_size}")
+    if len(header.n_per_file) != len(header.files):
+        raise ValueError("header.n_per_file must give the particle counts of every file (readers fill it)")
     segments = [(i, t, counts.get(t, 0)) for i, counts in enumerate(header.n_per_file) for t in species]
     n_all = sum(n for _, _, n in segments)
     lo, hi = rank * n_all // size, (rank + 1) * n_all // size
