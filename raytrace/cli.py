@@ -120,11 +120,15 @@ def cmd_slice(args, log: Log) -> None:
         assignment=s["assignment"], chunk_particles=s["chunk_particles"], workers=_workers(),
         omega_m=omega_m, log=log, comm=comm,
     )
-    if comm.rank == 0:
-        with atomic_h5(args.output, stage="slice", settings=s, inputs=args.snapshot) as f:
-            write_planes(f, planes)
-        log(f"{planes.n_slabs} slabs x 3 axes of {planes.grid}^2 written to {args.output}; "
-            f"deposited species {s['species']} hold {planes.deposited_fraction:.4f} of the mean matter density")
+
+    def write() -> None:
+        if comm.rank == 0:
+            with atomic_h5(args.output, stage="slice", settings=s, inputs=args.snapshot) as f:
+                write_planes(f, planes)
+            log(f"{planes.n_slabs} slabs x 3 axes of {planes.grid}^2 written to {args.output}; "
+                f"deposited species {s['species']} hold {planes.deposited_fraction:.4f} of the mean matter density")
+
+    collective(comm, write)  # a failure on rank 0 (disk full ...) must not leave the others waiting
     cpu = comm.allgather(time.process_time() - cpu_start)
     log(f"slicing took {time.perf_counter() - t_start:.2f} s (headers, deposit, reduction, potentials, writing; "
         f"{comm.size} rank{'s' if comm.size > 1 else ''}); cpu time per rank: {', '.join(f'{c:.2f}' for c in cpu)} s")
