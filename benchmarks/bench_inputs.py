@@ -174,7 +174,7 @@ def bench_mpi(pos: np.ndarray, grid: int, thickness: float, repeats: int, workdi
     print(f"  speed-up on 2 ranks, slicing phase = {med(serial, 3) / med(parallel, 3):5.2f}  (target >= 1.6; "
           "headers, deposit, reduction, potentials, writing)")
     print(f"  speed-up on 2 ranks, job wall time = {med(serial, 1) / med(parallel, 1):5.2f}  "
-          "(adds imports: numba, scipy, h5py, mpi4py)")
+          "(adds start-up: imports of numba, scipy, h5py, mpi4py; MPI init; loading compiled kernels)")
     print(f"  speed-up on 2 ranks, end to end    = {med(serial, 0) / med(parallel, 0):5.2f}  "
           f"(adds interpreter and MPI launcher start-up)")
     print(f"  cpu-time ratio, serial / busiest rank, slicing phase = {med(serial, 4) / med(parallel, 4):5.2f}  "

@@ -226,4 +226,9 @@ def tsc_3d(pos, mass, box, grid, out):
 
 
 DEPOSIT_PLANES = {"cic": deposit_planes_cic, "ngp": deposit_planes_ngp, "tsc": deposit_planes_tsc}
+
+
+def load_plane_kernel(assignment: str) -> None:
+    """Load the compiled plane kernel from numba's cache (its first call costs about a second)."""
+    DEPOSIT_PLANES[assignment](np.full((1, 3), 0.5), np.ones(1), 1.0, 2, 1, np.zeros((3, 1, 2, 2)))
 DEPOSIT_3D = {"ngp": ngp_3d, "cic": cic_3d, "tsc": tsc_3d}
