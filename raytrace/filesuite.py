@@ -129,7 +129,14 @@ def model_snapshots(
     pattern = model["snapshots"]
     files = expand_pattern(pattern, f"{key}.snapshots")
     fmt = model.get("format", "auto")
-    detected = {f: detect_format(f) for f in files}
+
+    def prefixed(fn, *args):
+        try:
+            return fn(*args)
+        except RaytraceError as exc:
+            raise RaytraceError(f"{key}.snapshots: {exc}") from None
+
+    detected = {f: prefixed(detect_format, f) for f in files}
     kinds = sorted(set(detected.values()))
     if fmt == "auto":
         if len(kinds) > 1:
@@ -149,12 +156,6 @@ def model_snapshots(
         raise RaytraceError(
             f"{key}.length_unit: required for legacy-binary snapshots, whose headers carry no unit (kpc/h or Mpc/h)"
         )
-
-    def prefixed(fn, *args):
-        try:
-            return fn(*args)
-        except RaytraceError as exc:
-            raise RaytraceError(f"{key}.snapshots: {exc}") from None
 
     summaries: list[FileSummary] = [prefixed(file_summary, f, fmt, length_unit) for f in files]
     groups: dict[float, list[FileSummary]] = {}

@@ -95,6 +95,13 @@ def test_pattern_matching_nothing(sims):
     assert "matches no file" in msg
 
 
+def test_a_file_that_is_no_snapshot(sims, tmp_path):
+    (tmp_path / "snap_000.0.hdf5").symlink_to(sims / "h5" / "snap_000.0.hdf5")
+    (tmp_path / "notes.txt").write_text("not particles\n" * 10)
+    msg = expect_error(files_config({"a": {"snapshots": "*"}}), "suite.models.a.snapshots:", tmp_path)
+    assert "notes.txt: neither an HDF5 file nor a legacy binary snapshot" in msg
+
+
 def test_mixed_formats(sims):
     msg = expect_error(files_config({"a": {"snapshots": "*/snap_000.*", "length_unit": "Mpc/h"}}),
                        "suite.models.a.snapshots: the pattern mixes formats", sims)
