@@ -289,3 +289,23 @@ def test_workflow_rejects_a_pattern_matching_nothing(sims, tmp_path):
     lines = [line for line in (proc.stdout + proc.stderr).splitlines() if "raytrace:" in line]
     assert len(lines) == 1 and "suite.models.a.snapshots: pattern" in lines[0] and "matches no file" in lines[0]
     assert not (tmp_path / "results").exists()
+
+
+def test_demo_with_neutrino_particles_plans_species_per_model(tmp_path):
+    # A demo suite with neutrino particles deposits species 1 and 2, except for the massless
+    # model, which has no neutrino particles (dry run: the planned slicing commands).
+    cfg = yaml.safe_load((ROOT / "config" / "small.yaml").read_text())
+    cfg["suite"]["neutrino_particles"] = True
+    cfg["suite"]["models"] = {"fiducial": {}, "m_nu_zero": {"m_nu_eV": 0.0}}
+    cfg["planes"]["species"] = [1, 2]
+    proc = snakemake(tmp_path, cfg, "-n", "-p")
+    text = proc.stdout + proc.stderr
+    assert proc.returncode == 0, text[-2000:]
+    slices = [line for line in text.splitlines() if " slice --settings " in line]
+    assert len(slices) == 6
+    fid = [line for line in slices if "planes/fiducial/" in line]
+    zero = [line for line in slices if "planes/m_nu_zero/" in line]
+    assert all('"species": [1, 2]' in line for line in fid) and len(fid) == 3
+    assert all('"species": [1]' in line for line in zero) and len(zero) == 3
+    assert all("mpiexec" not in line for line in slices)  # planes.mpi_tasks 1: no launcher
+    assert '"neutrino_particles": true' in text  # passed to the simulate jobs
