@@ -309,3 +309,17 @@ def test_demo_with_neutrino_particles_plans_species_per_model(tmp_path):
     assert all('"species": [1]' in line for line in zero) and len(zero) == 3
     assert all("mpiexec" not in line for line in slices)  # planes.mpi_tasks 1: no launcher
     assert '"neutrino_particles": true' in text  # passed to the simulate jobs
+
+
+def test_validate_command_reads_the_headers(sims, tmp_path):
+    # `raytrace validate` checks a files suite's snapshots too: one line naming the key on error
+    good, bad = tmp_path / "good.yaml", tmp_path / "bad.yaml"
+    good.write_text(yaml.safe_dump(files_config({"a": {"snapshots": str(sims / "h5" / "*.hdf5")}})))
+    bad.write_text(yaml.safe_dump(files_config({"a": {"snapshots": str(sims / "h5" / "*.hdf5"), "species": [3]}})))
+    run = lambda p: subprocess.run([sys.executable, "-m", "raytrace", "validate", str(p)],  # noqa: E731
+                                   capture_output=True, text=True, cwd=ROOT)
+    ok = run(good)
+    assert ok.returncode == 0 and "valid (snapshots a: 2; box 64 Mpc/h)" in ok.stdout, ok.stdout + ok.stderr
+    no = run(bad)
+    lines = [line for line in no.stderr.splitlines() if line.strip()]
+    assert no.returncode == 2 and len(lines) == 1 and "suite.models.a.species: snapshot" in lines[0], no.stderr
