@@ -12,6 +12,7 @@ The few collective operations slicing needs are methods of :class:`Comm`; the se
 from __future__ import annotations
 
 import os
+import time
 from typing import Any, Callable, TypeVar
 
 import numpy as np
@@ -71,6 +72,9 @@ class SerialComm:
         for i in range(n):
             out[i] = arrays[i]
 
+    def wait_for_all(self, poll_s: float = 0.002) -> None:
+        pass
+
     def agree(self, error: str | None) -> None:
         if error is not None:
             raise RaytraceError(error)
@@ -124,8 +128,15 @@ class MPIComm(SerialComm):
             for i in sorted(arrays):
                 self.comm.Send(np.ascontiguousarray(arrays[i]), dest=0, tag=i)
 
+    def wait_for_all(self, poll_s: float = 0.002) -> None:
+        """A barrier that sleeps while it waits (MPI's own waits spin and take a core from the busy ranks)."""
+        request = self.comm.Ibarrier()
+        while not request.Test():
+            time.sleep(poll_s)
+
     def agree(self, error: str | None) -> None:
         """Every rank raises the first rank's error if any rank has one (no rank is left waiting)."""
+        self.wait_for_all()  # ranks that finished early sleep until the last one arrives
         errors = self.comm.allgather(error)
         first = next((e for e in errors if e is not None), None)
         if first is not None:
