@@ -113,7 +113,7 @@ def cmd_slice(args, log: Log) -> None:
         load_plane_kernel(s["assignment"])
         position_range(np.zeros((1, 3)))
     t_start, cpu_start = time.perf_counter(), time.process_time()
-    log(f"start-up (interpreter excluded): imports, MPI, compiled kernels {t_start - log.t0:.2f} s")
+    startup = t_start - log.t0  # logged at the end: an input error stays the only line on stderr
     # rank 0 reads the headers (one pass over the files' markers) and hands them to the others
     header = comm.bcast(collective(comm, lambda: read_header(args.snapshot, s.get("format", "hdf5"), s.get("length_unit"))
                                    if comm.rank == 0 else None))
@@ -139,7 +139,8 @@ def cmd_slice(args, log: Log) -> None:
     collective(comm, write)  # a failure on rank 0 (disk full ...) must not leave the others waiting
     cpu = comm.allgather(time.process_time() - cpu_start)
     log(f"slicing took {time.perf_counter() - t_start:.2f} s (headers, deposit, reduction, potentials, writing; "
-        f"{comm.size} rank{'s' if comm.size > 1 else ''}); cpu time per rank: {', '.join(f'{c:.2f}' for c in cpu)} s")
+        f"{comm.size} rank{'s' if comm.size > 1 else ''}); cpu time per rank: {', '.join(f'{c:.2f}' for c in cpu)} s; "
+        f"start-up before it (imports, MPI, compiled kernels; interpreter excluded) {startup:.2f} s")
 
 
 def cmd_trace(args, log: Log) -> None:
