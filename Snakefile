@@ -23,11 +23,12 @@ import raytrace.systematics as rtsystematics
 from raytrace.errors import RaytraceError
 
 try:
-    # our validator first: one line naming the key; snakemake's then fills defaults
+    # our validator first: one line naming the key; it also fills the defaults
+    # (snakemake's would add demo-only defaults to a files suite)
     rtconfig.validate(config)
 except RaytraceError as exc:
     sys.exit(f"raytrace: configuration error: {exc}")
-validate(config, "config/schema.yaml")
+validate(config, "config/schema.yaml", set_default=False)
 config = rtconfig.validate(config)
 
 

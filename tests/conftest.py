@@ -52,6 +52,21 @@ class Suite:
                          alignment_bins=list(alignment_bins))
 
 
+def as_legacy(files, directory: Path) -> list[Path]:
+    """The snapshot ``files`` rewritten in the legacy binary layout (float32, little-endian, plain
+    block order) with the same particles in the same files (both writers split evenly)."""
+    from raytrace.snapshots import iter_chunks
+    from raytrace.snapshots.legacy_binary import write_snapshot_legacy
+
+    h = read_header(files)
+    pos = {t: np.concatenate([c.positions for c in iter_chunks(h, [t])]).astype(np.float32) for t in h.n_total}
+    paths = [Path(directory) / Path(f).name.removesuffix(".hdf5") for f in h.files]
+    Path(directory).mkdir(parents=True, exist_ok=True)
+    write_snapshot_legacy(paths, pos, {t: h.mass_table[t] for t in pos}, box=h.box_mpc_h, redshift=h.redshift,
+                          omega_m=h.omega_m, omega_lambda=h.omega_lambda, h=h.h)
+    return paths
+
+
 @pytest.fixture(scope="session")
 def suite(tmp_path_factory) -> Suite:
     """A 256 Mpc/h box with 128^3 particles at five redshifts, sliced into 64 Mpc/h planes."""
