@@ -298,6 +298,7 @@ def test_demo_with_neutrino_particles_plans_species_per_model(tmp_path):
     cfg["suite"]["neutrino_particles"] = True
     cfg["suite"]["models"] = {"fiducial": {}, "m_nu_zero": {"m_nu_eV": 0.0}}
     cfg["planes"]["species"] = [1, 2]
+    del cfg["forecast"]  # the slicing plan only
     proc = snakemake(tmp_path, cfg, "-n", "-p")
     text = proc.stdout + proc.stderr
     assert proc.returncode == 0, text[-2000:]
