@@ -19,14 +19,16 @@ if not config:
 
 
 import raytrace.config as rtconfig
+import raytrace.systematics as rtsystematics
 from raytrace.errors import RaytraceError
 
 try:
-    # our validator first: one line naming the key; snakemake's then fills defaults
+    # our validator first: one line naming the key; it also fills the defaults
+    # (snakemake's would add demo-only defaults to a files suite)
     rtconfig.validate(config)
 except RaytraceError as exc:
     sys.exit(f"raytrace: configuration error: {exc}")
-validate(config, "config/schema.yaml")
+validate(config, "config/schema.yaml", set_default=False)
 config = rtconfig.validate(config)
 
 
@@ -44,6 +46,7 @@ else:
 
 include: "workflow/rules/observe.smk"
 include: "workflow/rules/measure.smk"
+include: "workflow/rules/systematics.smk"
 include: "workflow/rules/stack.smk"
 include: "workflow/rules/forecast.smk"
 include: "workflow/rules/report.smk"
@@ -57,4 +60,5 @@ rule all:
         [f"{OUT}/stacks/{m}.h5" for m in MODELS],
         report_files(),
         forecast_outputs() if FORECAST else [],
+        variant_stack_files(),
     default_target: True

@@ -27,13 +27,31 @@ class Log:
     def __init__(self, stage: str):
         self.stage = stage
         self.t0 = time.perf_counter()
+        self.muted = False  # set on MPI ranks other than 0
 
     def __call__(self, message: str) -> None:
+        if self.muted:
+            return
         print(f"[{self.stage} {time.perf_counter() - self.t0:7.1f} s] {message}", file=sys.stderr, flush=True)
 
     def finish(self) -> None:
-        peak_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-        self(f"done: wall time {time.perf_counter() - self.t0:.2f} s, peak memory {peak_kb / 1024:.1f} MiB")
+        self(f"done: wall time {time.perf_counter() - self.t0:.2f} s, peak memory {peak_memory_mib():.1f} MiB")
+
+
+def peak_memory_mib() -> float:
+    """Peak resident memory of this process image.
+
+    Linux's ``VmHWM`` where available: ``ru_maxrss`` survives fork and exec, so a job
+    started by a large parent (Snakemake, a benchmark) would report the parent's size.
+    """
+    try:
+        with open("/proc/self/status") as f:
+            for line in f:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
 def _settings(text: str) -> dict:
@@ -55,7 +73,14 @@ def cmd_validate(args) -> None:
     from . import config
 
     cfg = config.load(args.config)
-    print(json.dumps(cfg, indent=1) if args.show else f"{args.config}: valid")
+    found = ""
+    if cfg["suite"]["kind"] == "files":  # the snapshots are part of what must be valid
+        from .filesuite import discover
+
+        suite = discover(cfg)
+        counts = ", ".join(f"{m}: {len(s)}" for m, s in suite.models.items())
+        found = f" (snapshots {counts}; box {suite.box_mpc_h:g} Mpc/h)"
+    print(json.dumps(cfg, indent=1) if args.show else f"{args.config}: valid{found}")
 
 
 def cmd_simulate(args, log: Log) -> None:
@@ -67,32 +92,62 @@ def cmd_simulate(args, log: Log) -> None:
     generate_model(
         cosmo, box_mpc_h=s["box_mpc_h"], particles_per_side=s["particles_per_side"],
         snapshot_redshifts=s["snapshot_redshifts"], seed=s["seed"], directory=args.outdir,
-        files_per_snapshot=s["files_per_snapshot"], lpt_order=s["lpt_order"], workers=_workers(), log=log,
+        files_per_snapshot=s["files_per_snapshot"], lpt_order=s["lpt_order"],
+        neutrino_particles=bool(s.get("neutrino_particles", False)), workers=_workers(), log=log,
     )
 
 
 def cmd_slice(args, log: Log) -> None:
+    import numpy as np
+
+    from .deposit import DEPOSIT_PLANES, load_plane_kernel
     from .hdf5 import atomic_h5
+    from .parallel import collective, world
     from .planes import slice_snapshot, write_planes
     from .snapshots import read_header
+    from .snapshots._check import position_range
 
+    comm = world()
     s = _settings(args.settings)
-    header = read_header(args.snapshot, s.get("format", "hdf5"), s.get("length_unit"))
-    log(f"snapshot z = {header.redshift:g}, box {header.box_mpc_h:g} Mpc/h, particles {header.n_total}")
+    log.muted = comm.rank != 0  # one log: rank 0's
+    if s.get("assignment") in DEPOSIT_PLANES:  # compiled kernels loaded once, before the clock starts
+        load_plane_kernel(s["assignment"])
+        position_range(np.zeros((1, 3)))
+    t_start, cpu_start = time.perf_counter(), time.process_time()
+    startup = t_start - log.t0  # logged at the end: an input error stays the only line on stderr
+    # rank 0 reads the headers (one pass over the files' markers) and hands them to the others
+    header = comm.bcast(collective(comm, lambda: read_header(args.snapshot, s.get("format", "hdf5"), s.get("length_unit"))
+                                   if comm.rank == 0 else None))
+    log(f"snapshot z = {header.redshift:g}, box {header.box_mpc_h:g} Mpc/h, particles {header.n_total}, "
+        f"format {header.fmt}" + (f", {comm.size} MPI ranks" if comm.size > 1 else ""))
+    omega_m = s.get("omega_m")
+    if omega_m is not None and abs(header.omega_m / omega_m - 1) > 1e-3:
+        log(f"note: the header's Omega0 = {header.omega_m:g} differs from the model's Omega_m = {omega_m:g}; "
+            "the contrast is taken relative to the model's")
     planes = slice_snapshot(
         header, grid=s["grid"], thickness_mpc_h=s["thickness_mpc_h"], species=s["species"],
-        assignment=s["assignment"], fmt=s.get("format", "hdf5"), chunk_particles=s["chunk_particles"],
-        workers=_workers(), log=log,
+        assignment=s["assignment"], chunk_particles=s["chunk_particles"], workers=_workers(),
+        omega_m=omega_m, log=log, comm=comm,
     )
-    with atomic_h5(args.output, stage="slice", settings=s, inputs=args.snapshot) as f:
-        write_planes(f, planes)
-    log(f"{planes.n_slabs} slabs x 3 axes of {planes.grid}^2 written to {args.output}")
+
+    def write() -> None:
+        if comm.rank == 0:
+            with atomic_h5(args.output, stage="slice", settings=s, inputs=args.snapshot) as f:
+                write_planes(f, planes)
+            log(f"{planes.n_slabs} slabs x 3 axes of {planes.grid}^2 written to {args.output}; "
+                f"deposited species {s['species']} hold {planes.deposited_fraction:.4f} of the mean matter density")
+
+    collective(comm, write)  # a failure on rank 0 (disk full ...) must not leave the others waiting
+    cpu = comm.allgather(time.process_time() - cpu_start)
+    log(f"slicing took {time.perf_counter() - t_start:.2f} s (headers, deposit, reduction, potentials, writing; "
+        f"{comm.size} rank{'s' if comm.size > 1 else ''}); cpu time per rank: {', '.join(f'{c:.2f}' for c in cpu)} s; "
+        f"start-up before it (imports, MPI, compiled kernels; interpreter excluded) {startup:.2f} s")
 
 
 def cmd_trace(args, log: Log) -> None:
     import numpy as np
 
-    from . import survey
+    from . import survey, systematics
     from .config import check_sources_within_planes, plane_schedule
     from .cosmology import Cosmology
     from .hdf5 import atomic_h5, write_dataset
@@ -102,6 +157,12 @@ def cmd_trace(args, log: Log) -> None:
     cosmo = Cosmology.from_mapping(s["cosmology"], where=f"suite.models.{args.model}")
     m = s["maps"]
     bins, source_bins = _source_bins(s.get("sources"))
+    plan, alignment_bins = None, []
+    if s.get("systematics"):
+        if bins is None:
+            raise RaytraceError("survey.systematics: systematics act on tomographic bins; configure survey.sources")
+        plan = systematics.plan_trace(bins.z, bins.nz, s["systematics"])
+        source_bins, alignment_bins = plan.source_bins(), plan.alignment_bins(cosmo)
     with PlaneFiles(args.planes) as planes:
         zs = [float(a["redshift"]) for a in planes.attrs]
         if zs != sorted(zs):
@@ -117,18 +178,23 @@ def cmd_trace(args, log: Log) -> None:
         maps = trace(
             cosmo, schedule, choice, planes, box_mpc_h=planes.box_mpc_h, field_deg=m["field_deg"],
             pixels=m["pixels"], source_redshifts=m["source_redshifts"], method=m["method"],
-            source_bins=source_bins, log=log,
+            source_bins=source_bins, alignment_bins=alignment_bins, log=log,
         )
         n_src = len(m["source_redshifts"])
+        n_bins = bins.n_bins if bins is not None else 0
+        lensing = ("kappa", "gamma1", "gamma2", "omega")
         with atomic_h5(args.output, stage="trace", settings=s, inputs=args.planes, seed=s["seed"]) as f:
-            for key, value in maps.items():
-                write_dataset(f, key, value[:n_src].astype(np.float32), "1", axes="[source, iy, ix]")
+            for key in lensing:
+                write_dataset(f, key, maps[key][:n_src].astype(np.float32), "1", axes="[source, iy, ix]")
             if bins is not None:
                 g = f.create_group("bins")
-                for key, value in maps.items():
-                    write_dataset(g, key, value[n_src:].astype(np.float32), "1", axes="[bin, iy, ix]")
+                for key in lensing:
+                    write_dataset(g, key, maps[key][n_src:n_src + n_bins].astype(np.float32), "1", axes="[bin, iy, ix]")
                 write_dataset(g, "z", bins.z, "1")
-                write_dataset(g, "nz", bins.nz, "1", axes="[bin, z]", description="true-redshift n(z) of each bin")
+                write_dataset(g, "nz", bins.nz if plan is None else plan.nz, "1", axes="[bin, z]",
+                              description="true-redshift n(z) of each bin")
+                if plan is not None:
+                    systematics.write_traced_systematics(g, plan, maps, n_src)
                 write_dataset(g, "fraction", bins.fractions, "1", description="share of the galaxy sample")
                 write_dataset(g, "edges", np.asarray(bins.edges, dtype=float), "1", description="photometric bin edges")
             f.attrs["source_redshifts"] = np.asarray(m["source_redshifts"], dtype=float)
@@ -243,13 +309,11 @@ def cmd_forecast(args, log: Log) -> None:
     from .stack import read_stack
 
     s = _settings(args.settings)
-    stacks = {}
-    for path in args.stacks:
-        model = read_stack(path)[0].name
-        stacks[model] = path
+    stacks = {read_stack(path)[0].name: path for path in args.stacks}
     products = run_forecast(s, stacks, log=log)
     write_products(products, h5_path=args.output, csv_path=args.table, html_path=args.html,
-                   diagnostics_path=args.diagnostics, png_path=args.ellipses, settings=s, inputs=args.stacks)
+                   diagnostics_path=args.diagnostics, png_path=args.ellipses, settings=s, inputs=args.stacks,
+                   degradation_path=args.degradation)
     log(f"forecast of {len(products.all_results())} combination(s) written to {args.output}")
 
 
@@ -343,6 +407,7 @@ def build_parser() -> argparse.ArgumentParser:
     fo.add_argument("--html", required=True, help="HTML error table")
     fo.add_argument("--diagnostics", required=True, help="CSV half-sample diagnostics")
     fo.add_argument("--ellipses", required=True, help="PNG confidence ellipses")
+    fo.add_argument("--degradation", help="CSV of sigma with / without nuisance parameters")
 
     pm = sub.add_parser("plot-maps", help="example convergence maps of every model (PNG)")
     pm.add_argument("--settings", required=True)
@@ -388,6 +453,19 @@ def per_realization(args: argparse.Namespace) -> list[argparse.Namespace]:
     return [argparse.Namespace(**{**vars(args), **{k: getattr(args, k)[i] for k in keys}}) for i in range(n)]
 
 
+def _rank() -> int:
+    from .parallel import launched_by_mpi
+
+    if not launched_by_mpi():
+        return 0
+    try:
+        from mpi4py import MPI
+
+        return MPI.COMM_WORLD.Get_rank()
+    except ImportError:
+        return 0
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     try:
@@ -403,7 +481,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         log.finish()
         return 0
     except RaytraceError as exc:
-        print(f"raytrace {args.command}: error: {exc}", file=sys.stderr)
+        if _rank() == 0:  # under MPI every rank has the error; one line is printed
+            print(f"raytrace {args.command}: error: {exc}", file=sys.stderr)
         return 2
 
 

@@ -47,11 +47,18 @@ def describe_error(error) -> str:
     return f"{path or '<top level>'}: {error.message}"
 
 
+def _resolve(ref: str, root: Mapping) -> Mapping:
+    """The part of the schema a local JSON pointer (``#/definitions/...``) names."""
+    node: Any = root
+    for part in ref.lstrip("#/").split("/"):
+        node = node[part]
+    return node
+
+
 def _set_defaults(instance: Any, sch: Mapping, root: Mapping) -> None:
     """Fill defaults from the schema (what ``snakemake.utils.validate(set_default=True)`` does)."""
     if "$ref" in sch:
-        name = sch["$ref"].split("/")[-1]
-        sch = root["definitions"][name]
+        sch = _resolve(sch["$ref"], root)
     for sub in sch.get("allOf", []):
         _set_defaults(instance, sub, root)
     if isinstance(instance, dict):
@@ -76,13 +83,42 @@ def validate(config: Mapping[str, Any]) -> dict:
     errors = sorted(validator.iter_errors(config), key=lambda e: (len(list(e.absolute_path)), _key_path(e)))
     if errors:
         raise RaytraceError(describe_error(jsonschema.exceptions.best_match(errors)))
+    _check_suite_kind(config)
     cfg = copy.deepcopy(dict(config))
     _set_defaults(cfg, sch, sch)
+    if cfg["suite"]["kind"] == "files":  # defaults of demo-only keys do not apply
+        for key in DEMO_ONLY_KEYS:
+            cfg["suite"].pop(key, None)
     _check_semantics(cfg)
     _check_geometry(cfg)
     _check_realizations(cfg)
     _check_forecast(cfg)
     return cfg
+
+
+#: suite keys that only a demo suite has (a files suite reads them from the snapshot headers)
+DEMO_ONLY_KEYS = ("box_mpc_h", "particles_per_side", "files_per_snapshot", "lpt_order", "snapshot_redshifts",
+                  "neutrino_particles")
+#: model keys that only a files suite has
+FILE_MODEL_KEYS = ("snapshots", "format", "length_unit", "species")
+
+
+def _check_suite_kind(config: Mapping) -> None:
+    """Keys that belong to the other kind of suite, checked before defaults are filled."""
+    suite = config["suite"]
+    files = suite["kind"] == "files"
+    for name, model in suite["models"].items():
+        for key in FILE_MODEL_KEYS:
+            if not files and key in (model or {}):
+                raise RaytraceError(f"suite.models.{name}.{key}: only for suite.kind: files")
+        if files and "snapshots" not in (model or {}):
+            raise RaytraceError(f"suite.models.{name}.snapshots: required key is missing (suite.kind: files)")
+    if files:
+        for key in DEMO_ONLY_KEYS:
+            if key in suite:
+                raise RaytraceError(
+                    f"suite.{key}: only for suite.kind: demo (a files suite reads the box and redshifts from its headers)"
+                )
 
 
 def load(path: str | os.PathLike) -> dict:
@@ -119,7 +155,26 @@ def model_cosmology(cfg: Mapping, model: str) -> Cosmology:
 
 
 def snapshot_redshifts(cfg: Mapping) -> list[float]:
+    """The demo suite's snapshot redshifts, increasing (a files suite has them from its headers)."""
     return sorted(float(z) for z in cfg["suite"]["snapshot_redshifts"])
+
+
+def model_species(cfg: Mapping, model: str) -> list[int]:
+    """Particle species deposited for ``model``.
+
+    A files model may set its own ``species`` (default ``planes.species``). In a demo
+    suite with neutrino particles, a model with massless neutrinos has none, so species
+    2 is dropped for it: its neutrinos are radiation, not matter.
+    """
+    species = list(cfg["planes"]["species"])
+    m = cfg["suite"]["models"][model] or {}
+    if cfg["suite"]["kind"] == "files":
+        return list(m.get("species", species))
+    from .demo import NEUTRINO_SPECIES
+
+    if model_parameters(cfg, model)["m_nu_eV"] == 0.0 and NEUTRINO_SPECIES in species and len(species) > 1:
+        species.remove(NEUTRINO_SPECIES)
+    return species
 
 
 @dataclass(frozen=True)
@@ -168,45 +223,67 @@ def check_sources_within_planes(source_redshifts, snapshot_z) -> None:
             )
 
 
-def _check_semantics(cfg: dict) -> None:
-    suite = cfg["suite"]
-    for name, offsets in suite["models"].items():
-        for key in offsets or {}:
-            if key not in PARAMETER_NAMES:
-                raise RaytraceError(f"suite.models.{name}.{key}: unknown parameter")
-    if "snapshot_redshifts" not in suite:
-        raise RaytraceError("suite.snapshot_redshifts: required key is missing")
-    zs = suite["snapshot_redshifts"]
-    if len(set(zs)) != len(zs):
-        raise RaytraceError("suite.snapshot_redshifts: redshifts must be distinct")
+def check_source_range(cfg: dict, z_top: float) -> None:
+    """Sources and the n(z) grid end at the highest snapshot redshift; fills ``survey.sources.z_max``.
+
+    On the sphere, user light cones and HEALPix shells are checked against their own depth by the
+    trace stage, so only tiled shells bound ``maps.source_redshifts`` here.
+    """
     sphere = cfg["maps"]["geometry"] == "sphere"
-    box, t = float(suite["box_mpc_h"]), float(cfg["planes"]["thickness_mpc_h"])
-    n_slabs = box / t
-    if not sphere and (abs(n_slabs - round(n_slabs)) > 1e-6 or round(n_slabs) < 1):
-        raise RaytraceError(f"planes.thickness_mpc_h: {t} does not divide suite.box_mpc_h = {box}")
-    srcs = cfg["maps"]["source_redshifts"]
-    if sorted(srcs) != list(srcs) or len(set(srcs)) != len(srcs):
-        raise RaytraceError("maps.source_redshifts: must be distinct and increasing")
-    # user light cones and HEALPix shells are checked against their own depth by the trace stage
     if not sphere or (cfg.get("shells") or {}).get("kind", "tile") == "tile":
-        check_sources_within_planes(srcs, snapshot_redshifts(cfg))
-    for name in suite["models"]:
-        model_cosmology(cfg, name)  # rejects impossible parameter combinations
+        check_sources_within_planes(cfg["maps"]["source_redshifts"], [z_top])
     sources = cfg.get("survey", {}).get("sources")
     if sources is not None:
-        z_top = max(snapshot_redshifts(cfg))
         sources.setdefault("z_max", z_top)
         if sources["z_max"] > z_top + 1e-9:
             raise RaytraceError(
                 f"survey.sources.z_max: {sources['z_max']} lies beyond the last lens plane "
                 f"(the highest snapshot redshift, z = {z_top:g})"
             )
+
+
+def _check_semantics(cfg: dict) -> None:
+    suite = cfg["suite"]
+    for name, offsets in suite["models"].items():
+        for key in offsets or {}:
+            if key not in PARAMETER_NAMES and key not in FILE_MODEL_KEYS:
+                raise RaytraceError(f"suite.models.{name}.{key}: unknown parameter")
+    srcs = cfg["maps"]["source_redshifts"]
+    if sorted(srcs) != list(srcs) or len(set(srcs)) != len(srcs):
+        raise RaytraceError("maps.source_redshifts: must be distinct and increasing")
+    for name in suite["models"]:
+        model_cosmology(cfg, name)  # rejects impossible parameter combinations
+    if suite["kind"] == "demo":
+        if "snapshot_redshifts" not in suite:
+            raise RaytraceError("suite.snapshot_redshifts: required key is missing")
+        zs = suite["snapshot_redshifts"]
+        if len(set(zs)) != len(zs):
+            raise RaytraceError("suite.snapshot_redshifts: redshifts must be distinct")
+        box, t = float(suite["box_mpc_h"]), float(cfg["planes"]["thickness_mpc_h"])
+        n_slabs = box / t
+        sphere = cfg["maps"]["geometry"] == "sphere"  # shells have their own thickness
+        if not sphere and (abs(n_slabs - round(n_slabs)) > 1e-6 or round(n_slabs) < 1):
+            raise RaytraceError(f"planes.thickness_mpc_h: {t} does not divide suite.box_mpc_h = {box}")
+        from .demo import NEUTRINO_SPECIES
+
+        if not suite["neutrino_particles"] and any(t != 1 for t in cfg["planes"]["species"]):
+            raise RaytraceError(
+                f"planes.species: the demo suite writes species 1 only"
+                f" (species {NEUTRINO_SPECIES}, neutrinos, with suite.neutrino_particles: true)"
+            )
+        if suite["neutrino_particles"] and any(t not in (1, NEUTRINO_SPECIES) for t in cfg["planes"]["species"]):
+            raise RaytraceError(f"planes.species: the demo suite writes species 1 and {NEUTRINO_SPECIES} only")
+        # a files suite checks these once its headers are read (raytrace.filesuite)
+        check_source_range(cfg, max(snapshot_redshifts(cfg)))
+    sources = cfg.get("survey", {}).get("sources")
+    if sources is not None:
         bins = sources.get("bins") or {}
         if "edges" in bins and "n_bins" in bins:
             raise RaytraceError("survey.sources.bins: give edges or n_bins, not both")
         edges = bins.get("edges")
         if edges is not None and list(edges) != sorted(set(edges)):
             raise RaytraceError("survey.sources.bins.edges: must be strictly increasing")
+    _check_systematics(cfg)
     ps = cfg.get("statistics", {}).get("power_spectrum")
     if ps and ps.get("ell_min") and ps.get("ell_max") and ps["ell_min"] >= ps["ell_max"]:
         raise RaytraceError("statistics.power_spectrum.ell_max: must exceed ell_min")
@@ -219,6 +296,32 @@ def _check_geometry(cfg: dict) -> None:
     from .sky.config import check
 
     check(cfg)
+
+
+def configured_bin_count(sources: Mapping | None) -> int:
+    """Number of tomographic bins ``survey.sources`` defines (0 without sources)."""
+    if sources is None:
+        return 0
+    bins = sources.get("bins") or {}
+    if bins.get("n_bins") is not None:
+        return int(bins["n_bins"])
+    if bins.get("edges") is not None:
+        return len(bins["edges"]) - 1
+    return 1
+
+
+def _check_systematics(cfg: dict) -> None:
+    from .systematics import KEY, check_settings
+
+    survey = cfg.get("survey", {})
+    systematics = survey.get("systematics")
+    if systematics is None:
+        return
+    sources = survey.get("sources")
+    check_settings(systematics, configured_bin_count(sources), has_sources=sources is not None)
+    for name in systematics.get("variant_models") or []:
+        if name not in cfg["suite"]["models"]:
+            raise RaytraceError(f"{KEY}.variant_models: {name!r} is not one of suite.models")
 
 
 # ------------------------------------------------------------ realisations, forecast
@@ -352,3 +455,70 @@ def _check_forecast(cfg: dict) -> None:
             raise RaytraceError(f"forecast.priors.sigma.{name}: not a forecast parameter")
     if priors.get("fisher") is not None and not Path(priors["fisher"]).is_file():
         raise RaytraceError(f"forecast.priors.fisher: {priors['fisher']}: file not found")
+    nuisance_parameters(cfg)
+
+
+# ------------------------------------------------------------------ nuisance parameters
+def nuisance_parameters(cfg: Mapping) -> dict[str, dict]:
+    """Nuisance parameters of ``forecast.nuisance``, each with its two observe variants.
+
+    Returns name -> ``{"fiducial": value, "prior_sigma": sigma or None,
+    "minus": (variant, value), "plus": (variant, value), "variants": {variant: nuisance values}}``.
+    Names: ``m_bin<i>`` (multiplicative shear bias of bin i), ``dz_bin<i>`` (mean redshift
+    shift of bin i; the step is ``survey.systematics.photoz.derivative_step``, which the
+    trace stage traces), ``A_IA`` (alignment amplitude). The variants change one value and
+    keep every other nuisance value nominal, so the derivatives are one at a time.
+    """
+    from .systematics import KEY, per_bin
+
+    fc = cfg.get("forecast") or {}
+    spec = fc.get("nuisance") or {}
+    if not spec:
+        return {}
+    systematics = cfg.get("survey", {}).get("systematics")
+    if systematics is None:
+        raise RaytraceError("forecast.nuisance: needs survey.systematics (the nominal nuisance values)")
+    n_bins = configured_bin_count(cfg.get("survey", {}).get("sources"))
+    out: dict[str, dict] = {}
+
+    def add(name, fiducial, step, values_of, prior):
+        lo, hi = f"nuisance_{name}_minus", f"nuisance_{name}_plus"
+        out[name] = {"fiducial": float(fiducial), "prior_sigma": prior,
+                     "minus": (lo, float(fiducial - step)), "plus": (hi, float(fiducial + step)),
+                     "variants": {lo: values_of(-step), hi: values_of(+step)}}
+
+    if "shear_bias" in spec:
+        s = spec["shear_bias"]
+        m0 = per_bin((systematics.get("shear_bias") or {}).get("m"), n_bins, f"{KEY}.shear_bias.m", default=0.0)
+        for i in range(n_bins):
+            def m_values(d, i=i):
+                m = [float(x) for x in m0]
+                m[i] += d
+                return {"shear_bias": {"m": m}}
+            add(f"m_bin{i}", m0[i], float(s["step"]), m_values, s.get("prior_sigma"))
+    if "photoz_shift" in spec:
+        s = spec["photoz_shift"]
+        pz = systematics.get("photoz") or {}
+        step = pz.get("derivative_step")
+        if step is None:
+            raise RaytraceError("forecast.nuisance.photoz_shift: needs survey.systematics.photoz.derivative_step "
+                                "(the trace stage traces the shifted bins)")
+        shift0 = per_bin(pz.get("shift"), n_bins, f"{KEY}.photoz.shift", default=0.0)
+        off0 = per_bin(pz.get("offset"), n_bins, f"{KEY}.photoz.offset", default=0.0)
+        if np.any(off0 != 0):
+            raise RaytraceError("forecast.nuisance.photoz_shift: the nominal survey.systematics.photoz.offset must be 0")
+        for i in range(n_bins):
+            def dz_values(d, i=i):
+                off = [0.0] * n_bins
+                off[i] = d
+                return {"photoz": {"offset": off}}
+            add(f"dz_bin{i}", shift0[i], float(step), dz_values, s.get("prior_sigma"))
+    if "alignment" in spec:
+        s = spec["alignment"]
+        ia = systematics.get("intrinsic_alignment")
+        if ia is None:
+            raise RaytraceError("forecast.nuisance.alignment: needs a survey.systematics.intrinsic_alignment section")
+        a0 = float(ia.get("amplitude", 0.0))
+        add("A_IA", a0, float(s["step"]),
+            lambda d: {"intrinsic_alignment": {"amplitude": a0 + d}}, s.get("prior_sigma"))
+    return out

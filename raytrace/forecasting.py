@@ -4,8 +4,9 @@ The chain (the numerics are in :mod:`raytrace.forecast`):
 
 1. The data vector is restricted to the elements whose maps are all in
    ``forecast.maps``; elements that are constant over the fiducial realisations
-   (an empty histogram bin, say) are dropped with a warning, since they carry no
-   information and make the covariance singular.
+   (an empty histogram bin, say) or exact linear combinations of other elements of
+   their statistic (:func:`independent_elements`) are dropped with a warning, since
+   they carry no information and make the covariance singular.
 2. The covariance comes from every realisation of the fiducial model.
 3. The derivatives come from the realisations shared by the stepped models and the
    fiducial (the same seeds, hence the same plane choices and noise): central
@@ -38,7 +39,7 @@ import html
 import json
 import math
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Mapping, Sequence
 
@@ -79,9 +80,39 @@ class ForecastProducts:
     diagnostics: list[fc.StabilityDiagnostics]
     warnings: list[str]
     area_factor: float
+    with_nuisance: list[fc.ForecastResult] = field(default_factory=list)
+    #: (name of the forecast with nuisances, name without, {parameter: sigma with / sigma without})
+    degradation: list[tuple[str, str, dict[str, float]]] = field(default_factory=list)
 
     def all_results(self) -> list[fc.ForecastResult]:
-        return self.results + self.with_priors
+        return self.results + self.with_priors + self.with_nuisance
+
+
+def independent_elements(values: np.ndarray, labels: np.ndarray, keep: np.ndarray, *, tol: float = 1e-6) -> np.ndarray:
+    """Elements of ``keep`` that are not exact linear combinations of earlier ones of their statistic.
+
+    Within each statistic, elements are taken in order and kept when the part of their
+    standardised realisations orthogonal to the kept ones has more than ``tol`` of their
+    norm (Gram-Schmidt). Such a dependent element (a duplicated bispectrum triangle bin,
+    histogram bins that sum to a constant) adds no information and makes the covariance
+    singular. Dependencies across statistics are not removed: a combination whose covariance
+    is still singular is reported by the forecast.
+    """
+    out = keep.copy()
+    x = values - values.mean(axis=0)
+    norm = np.linalg.norm(x, axis=0)
+    for stat in dict.fromkeys(labels["statistic"][keep]):
+        basis: list[np.ndarray] = []
+        for i in np.flatnonzero(keep & (labels["statistic"] == stat)):
+            v = x[:, i] / norm[i]
+            for b in basis:
+                v = v - (b @ v) * b
+            r = np.linalg.norm(v)
+            if r > tol:
+                basis.append(v / r)
+            else:
+                out[i] = False
+    return out
 
 
 def _combinations(spec: Sequence[Any]) -> list[list[str]]:
@@ -122,13 +153,26 @@ def run_forecast(settings: Mapping[str, Any], stacks: Mapping[str, str | Path],
             warnings.warn(f"{int(constant.sum())} data element(s) are constant over the fiducial realisations "
                           f"and are dropped ({', '.join(stats)})", stacklevel=1)
         keep &= std > 0
+        dependent = keep & ~independent_elements(fid.values, fid.labels, keep)
+        if dependent.any():
+            stats = sorted(set(fid.labels["statistic"][dependent]))
+            warnings.warn(f"{int(dependent.sum())} data element(s) are exact linear combinations of other elements "
+                          f"of their statistic over the fiducial realisations and are dropped ({', '.join(stats)})",
+                          stacklevel=1)
+        keep &= ~dependent
         labels = fid.labels[keep]
         sub = {m: fc.DataTable(t.values[:, keep], labels, t.seeds, name=m) for m, t in tables.items()}
         log(f"data vector: {int(keep.sum())} of {fid.n_data} elements "
             f"(maps {', '.join(settings['maps'])}); {fid.n_realizations} fiducial realisations")
 
         # derivatives from the realisations every stepped model shares with the fiducial
-        stepped = {m for s in settings["steps"].values() for m, _ in s.values()}
+        nuisance = settings.get("nuisance") or {}
+        nuisance_steps = {q: {"minus": tuple(v["minus"]), "plus": tuple(v["plus"])} for q, v in nuisance.items()}
+        for q, v in nuisance_steps.items():
+            for side, (table, _) in v.items():
+                if table not in sub:
+                    raise RaytraceError(f"forecast.nuisance.{q}: no stack file for the variant {table!r}")
+        stepped = {m for s in list(settings["steps"].values()) + list(nuisance_steps.values()) for m, _ in s.values()}
         shared = sub[fid_model].seeds
         for m in stepped:
             shared = np.intersect1d(shared, sub[m].seeds)
@@ -155,6 +199,32 @@ def run_forecast(settings: Mapping[str, Any], stacks: Mapping[str, str | Path],
                                  prior_fisher=priors.get("fisher"), **common)
                 rp.name = f"{r.name} + {priors.get('label', 'prior')}"
                 with_priors.append(rp)
+        with_nuisance, degradation = [], []
+        if nuisance:
+            full_params = parameters + list(nuisance)
+            derivs_full = fc.derivatives(
+                deriv_tables, {**{p: steps[p] for p in parameters}, **nuisance_steps},
+                (fid_model, {**fid_values, **{q: v["fiducial"] for q, v in nuisance.items()}}))
+            log("nuisance derivatives: " + ", ".join(f"{q} ({n} pairs)" for q, n in zip(
+                derivs_full.parameters[len(parameters):], derivs_full.n_pairs[len(parameters):])))
+            nuisance_sigma = {q: v["prior_sigma"] for q, v in nuisance.items() if v.get("prior_sigma")}
+            full_common = dict(common, parameters=full_params)
+            variants = [(results, {}, None, "nuisances")]
+            if with_priors:
+                prior_f = None
+                if priors.get("fisher"):
+                    k = len(full_params)
+                    prior_f = np.zeros((k, k))
+                    prior_f[:len(parameters), :len(parameters)] = fc.load_prior_fisher(priors["fisher"], len(parameters), parameters)
+                variants.append((with_priors, dict(priors.get("sigma") or {}), prior_f, "nuisances"))
+            for base_list, sigma, prior_f, label in variants:
+                for base, combo in zip(base_list, combos):
+                    r = fc.forecast(derivs_full, summary.covariance, n_sims, labels, combo,
+                                    prior_sigma={**sigma, **nuisance_sigma} or None, prior_fisher=prior_f, **full_common)
+                    r.name = f"{base.name} + {label}"
+                    with_nuisance.append(r)
+                    degradation.append((r.name, base.name, {
+                        q: float(r.marginalised[i] / base.marginalised[i]) for i, q in enumerate(parameters)}))
         diagnostics = []
         dset = fset.get("diagnostics") or {}
         for combo in combos:
@@ -166,21 +236,24 @@ def run_forecast(settings: Mapping[str, Any], stacks: Mapping[str, str | Path],
         if text not in caught:
             caught.append(text)
             log(f"warning: {text}")
-    for r in results + with_priors:
+    for r in results + with_priors + with_nuisance:
         log(f"{r.name}: {r.n_data} elements, Hartlap {r.hartlap:.3f}; " + ", ".join(
             f"sigma({p}) = {s:.4g}" for p, s in zip(r.parameters, r.marginalised)))
     return ForecastProducts(parameters, fid_values, labels, n_sims, derivs, summary.covariance, summary.mean,
-                            results, with_priors, diagnostics, caught, fc.area_ratio(common["map_area"], survey_area))
+                            results, with_priors, diagnostics, caught, fc.area_ratio(common["map_area"], survey_area),
+                            with_nuisance, degradation)
 
 
 # ----------------------------------------------------------------------------- files
 def write_products(products: ForecastProducts, *, h5_path, csv_path, html_path, diagnostics_path, png_path,
-                   settings: Mapping[str, Any], inputs: Sequence[str]) -> None:
+                   settings: Mapping[str, Any], inputs: Sequence[str], degradation_path=None) -> None:
     """Write every product of :func:`run_forecast` (each file atomically)."""
     from .hdf5 import atomic_h5, write_dataset
     from .plots import plot_fisher_ellipses
 
     p = products
+    if degradation_path is not None:
+        _write_degradation(degradation_path, p)
     with atomic_h5(h5_path, stage="forecast", settings=settings, inputs=inputs) as f:
         f.attrs["parameters"] = json.dumps(p.parameters)
         f.attrs["fiducial_values"] = json.dumps(p.fiducial_values)
@@ -197,6 +270,7 @@ def write_products(products: ForecastProducts, *, h5_path, csv_path, html_path, 
         write_dataset(d, "step", np.asarray(p.derivatives.step), "parameter unit")
         write_dataset(d, "n_pairs", np.asarray(p.derivatives.n_pairs), "1")
         d.attrs["kind"] = json.dumps(p.derivatives.kind)
+        f.attrs["degradation"] = json.dumps(p.degradation)
         c = f.create_group("combinations")
         diag = {x.name: x for x in p.diagnostics}
         for r in p.all_results():
@@ -219,7 +293,9 @@ def write_products(products: ForecastProducts, *, h5_path, csv_path, html_path, 
     _write_diagnostics(diagnostics_path, p.diagnostics)
     _write_html(html_path, p)
     scale = np.array([PARAMETER_SCALES.get(q, 1.0) for q in p.parameters])
-    plot_fisher_ellipses({r.name: r.covariance * np.outer(scale, scale) for r in p.all_results()}, p.parameters,
+    k = len(p.parameters)  # cosmological parameters first; nuisances marginalised over
+    # the configured combinations (with priors and nuisances they are in the error table)
+    plot_fisher_ellipses({r.name: r.covariance[:k, :k] * np.outer(scale, scale) for r in p.results}, p.parameters,
                          [p.fiducial_values[q] * scale[i] for i, q in enumerate(p.parameters)], png_path,
                          parameter_labels={q: PARAMETER_LABELS.get(q, q) for q in p.parameters})
 
@@ -254,6 +330,20 @@ def _write_diagnostics(path, diagnostics: Sequence[fc.StabilityDiagnostics]) -> 
                         d.half_derivatives[0, i], d.half_derivatives[1, i], cc[i], dc[i])])
 
 
+def _write_degradation(path, p: ForecastProducts) -> None:
+    """sigma(with nuisances) / sigma(without) per combination and cosmological parameter, as CSV."""
+    from .hdf5 import atomic_file
+
+    with atomic_file(path) as tmp, open(tmp, "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["combination", "parameter", "sigma_fixed_nuisance", "sigma_marginalised_nuisance", "degradation"])
+        base = {r.name: r for r in p.all_results()}
+        for name, without, ratios in p.degradation:
+            for i, q in enumerate(p.parameters):
+                w.writerow([without, q, f"{base[without].marginalised[i]:.6g}", f"{base[name].marginalised[i]:.6g}",
+                            f"{ratios[q]:.6g}"])
+
+
 def _fmt(x: float) -> str:
     return "n/a" if not math.isfinite(x) else f"{x:.3g}"
 
@@ -270,6 +360,14 @@ def _write_html(path, p: ForecastProducts) -> None:
             for m, md, c in zip(r.marginalised, r.marginalised_ds, r.conditional))
         rows.append(f"<tr><td>{html.escape(r.name)}</td><td>{r.n_data}</td><td>{r.hartlap:.3f}</td>{cells}</tr>")
     notes = "".join(f"<li>{html.escape(w)}</li>" for w in p.warnings) or "<li>none</li>"
+    degradation = ""
+    if p.degradation:
+        drows = "".join(
+            f"<tr><td>{html.escape(without)}</td>" + "".join(f"<td>{ratios[q]:.3g}</td>" for q in p.parameters) + "</tr>"
+            for _, without, ratios in p.degradation)
+        degradation = (f"<h3>Degradation by the nuisance parameters</h3><p>σ(nuisances marginalised with their priors) / "
+                       f"σ(nuisances fixed) per cosmological parameter.</p><table><tr><th>combination</th>{head}</tr>"
+                       f"{drows}</table>")
     fid = ", ".join(f"{html.escape(q)} = {v:g}" for q, v in p.fiducial_values.items())
     page = f"""<!doctype html><html><head><meta charset="utf-8"><title>Forecast errors</title>
 <style>body{{font-family:sans-serif;font-size:14px}} table{{border-collapse:collapse}}
@@ -280,6 +378,7 @@ Each cell: the marginalised error with the Hartlap-debiased precision matrix; be
 Dodelson–Schneider factor and the conditional error (other parameters fixed).</p>
 <table><tr><th>combination</th><th>elements</th><th>Hartlap</th>{head}</tr>
 {''.join(rows)}</table>
+{degradation}
 <h4>Warnings</h4><ul>{notes}</ul></body></html>
 """
     with atomic_file(path) as tmp:

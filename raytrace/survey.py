@@ -1368,7 +1368,8 @@ def interpolate_planes(maps: np.ndarray, z_sources: np.ndarray, theta_x: np.ndar
 def mock_catalog(kappa: np.ndarray, gamma1: np.ndarray, gamma2: np.ndarray, z_sources: Sequence[float],
                  field_deg: float, z_grid: np.ndarray, nz: np.ndarray, *, galaxies_per_arcmin2: float,
                  sigma_e: float, mask: np.ndarray | None = None, seed: int = 0, realisation: int = 0,
-                 bin_index: int = 0) -> dict[str, np.ndarray]:
+                 bin_index: int = 0, shear_bias: tuple[float, float, float] | None = None,
+                 alignment: tuple[np.ndarray, np.ndarray] | None = None) -> dict[str, np.ndarray]:
     r"""Mock shear catalog drawn from ray-traced maps.
 
     Parameters
@@ -1389,6 +1390,13 @@ def mock_catalog(kappa: np.ndarray, gamma1: np.ndarray, gamma2: np.ndarray, z_so
         Random stream (:func:`seed_sequence`, stream ``STREAM_CATALOG``): a given
         realisation has the same positions, redshifts and intrinsic shapes in every
         model.
+    shear_bias : (m, c1, c2), optional
+        Shear calibration bias: the signal that shears the intrinsic shapes is
+        :math:`(1+m)\,s + c_1 + i c_2` (Heymans et al. 2006) instead of :math:`s`.
+    alignment : (P, P) maps of the two intrinsic-alignment shear components, optional
+        Added to the reduced shear, :math:`s = g + \gamma^I`, read at each galaxy's
+        position (bilinear): to first order in the shears an aligned intrinsic shape
+        (see :mod:`raytrace.systematics`). Adds the columns ``ia1``, ``ia2``.
 
     Returns
     -------
@@ -1403,11 +1411,16 @@ def mock_catalog(kappa: np.ndarray, gamma1: np.ndarray, gamma2: np.ndarray, z_so
     Notes
     -----
     Map values are interpolated with :func:`interpolate_planes`; the reduced shear
-    :math:`g = \gamma/(1-\kappa)` is formed per galaxy from the interpolated fields.
+    :math:`g = \gamma/(1-\kappa)` is formed per galaxy from the interpolated fields. The
+    biased signal shears the random intrinsic shape exactly (:func:`lens_ellipticity`), so
+    the mean observed ellipticity is :math:`(1+m)(g + \gamma^I) + c`: as for the maps, the
+    bias acts on the signal and the shape noise is the measured one. The columns ``g1``,
+    ``g2`` stay the true reduced shear.
 
     References
     ----------
     Seitz C., Schneider P., 1997, A&A 318, 687.
+    Heymans C. et al., 2006, MNRAS 368, 1323.
     """
     kappa = np.asarray(kappa)
     gamma1 = np.asarray(gamma1)
@@ -1448,11 +1461,22 @@ def mock_catalog(kappa: np.ndarray, gamma1: np.ndarray, gamma2: np.ndarray, z_so
     g1s = interpolate_planes(gamma1, zs, tx, ty, z, field_deg)
     g2s = interpolate_planes(gamma2, zs, tx, ty, z, field_deg)
     g = reduced_shear(k, g1s, g2s)
-    eps = lens_ellipticity(eps_s, g)
+    signal = g
+    extra = {}
+    if alignment is not None:
+        coords = np.vstack([(ty + half) / d - 0.5, (tx + half) / d - 0.5])
+        ia1, ia2 = (scipy.ndimage.map_coordinates(np.asarray(a, dtype=float), coords, order=1, mode="nearest")
+                    for a in alignment)
+        signal = signal + (ia1 + 1j * ia2)
+        extra = {"ia1": ia1, "ia2": ia2}
+    if shear_bias is not None:
+        m, c1, c2 = (float(v) for v in shear_bias)
+        signal = (1.0 + m) * signal + (c1 + 1j * c2)
+    eps = lens_ellipticity(eps_s, signal)
     return {
         "theta_x_deg": np.rad2deg(tx), "theta_y_deg": np.rad2deg(ty), "z": z,
         "kappa": k, "gamma1": g1s, "gamma2": g2s, "g1": g.real, "g2": g.imag,
-        "e1_int": eps_s.real, "e2_int": eps_s.imag, "e1": eps.real, "e2": eps.imag,
+        "e1_int": eps_s.real, "e2_int": eps_s.imag, "e1": eps.real, "e2": eps.imag, **extra,
     }
 
 

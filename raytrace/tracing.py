@@ -44,6 +44,10 @@ the kernel, by quadrature on the n(z) grid). In the multi-plane case the bin is 
 n(z)-weighted sum of the maps of sources at the slab boundaries, each galaxy's weight
 shared linearly between the two boundaries that bracket it.
 
+Intrinsic alignments. Besides the lensing maps the tracer can project the planes' tidal
+field with a bin's n(z) and the nonlinear alignment weight (:class:`AlignmentBin`): the
+unit-amplitude intrinsic shear and its E-mode convergence of each bin (see :func:`trace`).
+
 Interpolation: the planes' potential derivatives are interpolated bilinearly (cell
 centres at :math:`(i+\tfrac12)` cells) at the ray positions.
 
@@ -51,6 +55,8 @@ References
 ----------
 Schneider, P., Ehlers, J. & Falco, E. E. 1992, *Gravitational Lenses*, Springer.
 Hilbert, S., Hartlap, J., White, S. D. M. & Schneider, P. 2009, A&A 499, 31.
+Hirata, C. M. & Seljak, U. 2004, Phys. Rev. D 70, 063526.
+Bridle, S. & King, L. 2007, New J. Phys. 9, 444.
 """
 
 from __future__ import annotations
@@ -293,6 +299,28 @@ class SourceBin:
         return cls(z, w / total)
 
 
+@dataclass(frozen=True)
+class AlignmentBin:
+    r"""The intrinsic-alignment weight of a source bin on a redshift grid.
+
+    ``weight`` is :math:`n(z)\,F(z)`: the bin's redshift distribution (unit integral over
+    ``z``) times the unit-amplitude alignment factor of the nonlinear alignment model
+    (:func:`raytrace.systematics.nla_factor`). The weight of slab k is
+    :math:`W_k = \int_{z(\chi_{lo})}^{z(\chi_{hi})} n F\,dz\,/\,t_k` (trapezoid rule on the
+    grid, linear between grid points), the slab's galaxies over its thickness.
+    """
+
+    z: np.ndarray
+    weight: np.ndarray
+
+    def slab_weights(self, z_lo: np.ndarray, z_hi: np.ndarray, thickness: np.ndarray) -> np.ndarray:
+        """W_k of slabs spanning [z_lo, z_hi] of comoving thickness ``thickness``."""
+        z = np.asarray(self.z, dtype=float)
+        w = np.asarray(self.weight, dtype=float)
+        cum = np.concatenate([[0.0], np.cumsum(0.5 * (w[1:] + w[:-1]) * np.diff(z))])
+        return (np.interp(z_hi, z, cum) - np.interp(z_lo, z, cum)) / thickness
+
+
 def boundary_weights(chi_boundaries: np.ndarray, chi_gal: np.ndarray, weights: np.ndarray) -> np.ndarray:
     """Share each galaxy's weight linearly between the two slab boundaries around it.
 
@@ -337,12 +365,27 @@ def trace(
     source_redshifts: Sequence[float],
     method: str = "multi-plane",
     source_bins: Sequence[SourceBin] = (),
+    alignment_bins: Sequence[AlignmentBin] = (),
     log: Callable[[str], None] = lambda s: None,
 ) -> dict[str, np.ndarray]:
-    """Convergence, shear and rotation maps, each (n_sources + n_bins, pixels, pixels) float64.
+    r"""Convergence, shear and rotation maps, each (n_sources + n_bins, pixels, pixels) float64.
 
     The first ``len(source_redshifts)`` maps are the single source redshifts, the others
     the ``source_bins`` in order.
+
+    With ``alignment_bins`` the result also holds ``ia_kappa``, ``ia_gamma1``, ``ia_gamma2``
+    (n_alignment_bins, pixels, pixels): the unit-amplitude intrinsic shear of each bin in the
+    nonlinear alignment model, :math:`\gamma^I = -F\,(\partial_x^2-\partial_y^2,\,
+    2\partial_x\partial_y)\,\nabla^{-2}\delta` (Hirata & Seljak 2004; Bridle & King 2007),
+    projected with the bin's n(z), and its E-mode convergence :math:`\kappa^I = -F\delta`
+    (the Kaiser-Squires inverse of :math:`\gamma^I`). The slab's contrast and tides are
+    :math:`\bar\delta = (\phi_{,xx}+\phi_{,yy})/t` and :math:`(\phi_{,xx}-\phi_{,yy},
+    2\phi_{,xy})/t` (the plane's potential solves :math:`\nabla^2\phi = \bar\delta t`), so
+    slab k adds :math:`-W_k\,(T_{xx}+T_{yy},\ T_{xx}-T_{yy},\ 2T_{xy})` with the weights of
+    :meth:`AlignmentBin.slab_weights`. The tides are read where the rays cross the slab's
+    plane: on the unperturbed rays (Born) or on the deflected ones (multi-plane). This is
+    the Limber-level projection: each slab's galaxies see the slab-averaged tidal field.
+    The lensing maps do not depend on whether alignment maps are asked for.
     """
     if method not in ("multi-plane", "born"):
         raise RaytraceError(f"maps.method: unknown method {method!r} (multi-plane | born)")
@@ -360,17 +403,44 @@ def trace(
         if not np.any((chi_gal > schedule.chi_hi[0]) & (sb.weights > 0)):
             raise RaytraceError(f"survey.sources: the n(z) of bin {b} has no support beyond the first lens plane")
         bin_chi.append(chi_gal)
+    z_lo, z_hi = cosmo.redshift_at(schedule.chi_lo), cosmo.redshift_at(schedule.chi_hi)
+    ia_w = np.zeros((len(alignment_bins), schedule.n_planes))
+    for b, ab in enumerate(alignment_bins):
+        support = np.asarray(ab.z)[np.asarray(ab.weight) != 0]
+        if support.size and support.max() > float(z_hi[-1]) * (1 + 1e-9):
+            raise RaytraceError(
+                f"survey.sources: the n(z) of alignment bin {b} extends beyond the last lens plane "
+                f"(z = {float(z_hi[-1]):.3f}); lower survey.sources.z_max"
+            )
+        ia_w[b] = ab.slab_weights(z_lo, z_hi, schedule.thickness)
     n_src = len(paths)
     n_needed = max([p.full + (p.partial is not None) for p in paths] + [0])
     for chi_gal, sb in zip(bin_chi, bins):
         reach = chi_gal[sb.weights > 0].max()
         n_needed = max(n_needed, int(np.searchsorted(schedule.chi_lo, reach, side="left")))
+    if np.any(ia_w != 0):
+        n_needed = max(n_needed, int(np.nonzero(np.any(ia_w != 0, axis=0))[0].max()) + 1)
     n_needed = min(max(n_needed, 1), schedule.n_planes)
     tx, ty = ray_grid(field_deg, pixels)
     strengths = [lens_strength(cosmo, float(schedule.z[k])) for k in range(schedule.n_planes)]
     n_maps = n_src + len(bins)
     out = {k: np.zeros((n_maps, pixels, pixels)) for k in ("kappa", "gamma1", "gamma2", "omega")}
+    if len(alignment_bins):
+        out.update({k: np.zeros((len(alignment_bins), pixels, pixels)) for k in ("ia_kappa", "ia_gamma1", "ia_gamma2")})
     t0 = time.perf_counter()
+
+    def add_alignment(k: int, tidal: np.ndarray, trace_sum=None, trace_diff=None) -> None:
+        used = np.nonzero(ia_w[:, k])[0]
+        if not used.size:
+            return
+        t_sum = (tidal[0] + tidal[1]).reshape(pixels, pixels) if trace_sum is None else trace_sum
+        t_diff = (tidal[0] - tidal[1]).reshape(pixels, pixels) if trace_diff is None else trace_diff
+        t_xy = tidal[2].reshape(pixels, pixels)
+        for b in used:
+            wb = ia_w[b, k]
+            out["ia_kappa"][b] -= wb * t_sum
+            out["ia_gamma1"][b] -= wb * t_diff
+            out["ia_gamma2"][b] -= 2.0 * wb * t_xy
 
     def plane_fields(k: int, names: Sequence[str]):
         return load(int(choice.snapshot[k]), int(choice.axis[k]), int(choice.slab[k]), names)
@@ -390,16 +460,21 @@ def trace(
             to_tidal = 2.0 / (hi - lo)
             w = list(kernel.weight(lo, hi, chi_src) * to_tidal) if n_src else []
             w += [float(np.sum(sb.weights * kernel.weight(lo, hi, c))) * to_tidal for sb, c in zip(bins, bin_chi)]
-            if not any(w):
+            if not any(w) and not np.any(ia_w[:, k]):
                 continue
             fxx, fyy, fxy = plane_fields(k, ("d2phi_dxx", "d2phi_dyy", "d2phi_dxy"))
             born_tidal(tx, ty, float(schedule.chi[k]), fxx, fyy, fxy, *geometry(k), tidal)
+            # the same sums for every map (each product below is formed as before: scalar first)
+            t_sum = (tidal[0] + tidal[1]).reshape(pixels, pixels)
+            t_diff = (tidal[0] - tidal[1]).reshape(pixels, pixels)
+            t_xy = tidal[2].reshape(pixels, pixels)
+            add_alignment(k, tidal, t_sum, t_diff)
             for i, wi in enumerate(w):
                 if wi == 0.0:
                     continue
-                out["kappa"][i] += (0.5 * wi * (tidal[0] + tidal[1])).reshape(pixels, pixels)
-                out["gamma1"][i] += (0.5 * wi * (tidal[0] - tidal[1])).reshape(pixels, pixels)
-                out["gamma2"][i] += (wi * tidal[2]).reshape(pixels, pixels)
+                out["kappa"][i] += 0.5 * wi * t_sum
+                out["gamma1"][i] += 0.5 * wi * t_diff
+                out["gamma2"][i] += wi * t_xy
             log(f"plane {k + 1}/{n_needed} (Born, {time.perf_counter() - t0:.1f} s)")
         return out
 
@@ -430,9 +505,14 @@ def trace(
                 branch = state.copy()
                 multiplane_step(branch, p.partial.chi - chi_cur, *fields, *geometry(k), p.partial.strength)
                 record(i, branch, p.partial.chi)
-        if any(k < p.full for p in paths) or (bins and np.any(boundary_w[:, k:] > 0)):
+        if any(k < p.full for p in paths) or (bins and np.any(boundary_w[:, k:] > 0)) or np.any(ia_w[:, k:]):
             multiplane_step(state, float(schedule.chi[k]) - chi_cur, *fields, *geometry(k), strengths[k])
             chi_cur = float(schedule.chi[k])
+            if np.any(ia_w[:, k]):
+                # tides where the deflected rays cross this plane (state holds x, y at chi_k)
+                tidal = np.empty((3, tx.size))
+                born_tidal(state[0], state[1], 1.0, fields[2], fields[3], fields[4], *geometry(k), tidal)
+                add_alignment(k, tidal)
             for i, p in enumerate(paths):
                 if p.full == k + 1 and p.partial is None:
                     record(i, state, chi_cur)

@@ -34,7 +34,7 @@ class Suite:
         return plane_schedule(self.cosmo, self.thickness, z_max, self.snapshot_z)
 
     def trace(self, realization: int, *, method: str, sources=(), field_deg: float, pixels: int, randomize=True,
-              seed=7, chi_min: float = 0.0, bins=(), z_max: float | None = None):
+              seed=7, chi_min: float = 0.0, bins=(), z_max: float | None = None, alignment_bins=()):
         """Trace one realisation; planes nearer than ``chi_min`` are left empty if asked."""
         sched = self.schedule(z_max if z_max is not None else max(sources))
         with PlaneFiles(self.plane_files) as planes:
@@ -48,7 +48,23 @@ class Suite:
                 return planes(snapshot, axis, slab, names)
 
             return trace(self.cosmo, sched, choice, load, box_mpc_h=self.box, field_deg=field_deg,
-                         pixels=pixels, source_redshifts=list(sources), method=method, source_bins=list(bins))
+                         pixels=pixels, source_redshifts=list(sources), method=method, source_bins=list(bins),
+                         alignment_bins=list(alignment_bins))
+
+
+def as_legacy(files, directory: Path) -> list[Path]:
+    """The snapshot ``files`` rewritten in the legacy binary layout (float32, little-endian, plain
+    block order) with the same particles in the same files (both writers split evenly)."""
+    from raytrace.snapshots import iter_chunks
+    from raytrace.snapshots.legacy_binary import write_snapshot_legacy
+
+    h = read_header(files)
+    pos = {t: np.concatenate([c.positions for c in iter_chunks(h, [t])]).astype(np.float32) for t in h.n_total}
+    paths = [Path(directory) / Path(f).name.removesuffix(".hdf5") for f in h.files]
+    Path(directory).mkdir(parents=True, exist_ok=True)
+    write_snapshot_legacy(paths, pos, {t: h.mass_table[t] for t in pos}, box=h.box_mpc_h, redshift=h.redshift,
+                          omega_m=h.omega_m, omega_lambda=h.omega_lambda, h=h.h)
+    return paths
 
 
 @pytest.fixture(scope="session")

@@ -217,3 +217,61 @@ def test_forecast_cli_bad_settings_is_one_line_error(tmp_path):
     assert proc.returncode == 2
     assert proc.stderr.strip().count("\n") == 0 and "--settings: not valid JSON" in proc.stderr
     assert not (tmp_path / "f.h5").exists()
+
+
+def nuisance_suite(tmp_path, prior_sigma):
+    """The linear suite plus a nuisance parameter b observed as two variants of the fiducial."""
+    settings, paths, jac, cov = linear_suite(tmp_path, n_fid=400)
+    rng = np.random.default_rng(7)
+    jb = jac[0] + 0.3 * rng.normal(size=8)  # degenerate with m_nu_eV, so marginalising costs
+    fid_table, _ = read_stack(paths["fiducial"])
+    for name, b in (("minus", -0.05), ("plus", 0.05)):
+        t = fc.DataTable(fid_table.values[:40] + b * jb, fid_table.labels, fid_table.seeds[:40],
+                         name=f"fiducial@nu_{name}")
+        paths[t.name] = tmp_path / f"nu_{name}.h5"
+        write_stack(paths[t.name], t, ["ell"] * 8, model=t.name)
+    settings["nuisance"] = {"b": {"fiducial": 0.0, "prior_sigma": prior_sigma,
+                                  "minus": ["fiducial@nu_minus", -0.05], "plus": ["fiducial@nu_plus", 0.05]}}
+    return settings, paths, jb
+
+
+def test_nuisance_derivatives_and_degradation(tmp_path):
+    settings, paths, jb = nuisance_suite(tmp_path, prior_sigma=0.1)
+    out = run_forecast(settings, paths)
+    assert [r.name for r in out.with_nuisance] == [f"{r.name} + nuisances" for r in out.results]
+    full = out.with_nuisance[2]
+    assert full.parameters == ["m_nu_eV", "A_s", "b"]
+    # paired variants of the fiducial: the nuisance derivative is exact
+    np.testing.assert_allclose(full.fisher[2, 2] - 1 / 0.1**2,
+                               100 * full.hartlap * jb[:7] @ np.linalg.solve(
+                                   np.cov(read_stack(paths["fiducial"])[0].values[:, :7], rowvar=False), jb[:7]),
+                               rtol=1e-6)
+    # marginalising over a parameter never shrinks an error (Cramer-Rao; Tegmark et al. 1997)
+    for name, without, ratios in out.degradation:
+        assert all(r >= 1 - 1e-12 for r in ratios.values()), (name, ratios)
+    assert max(out.degradation[2][2].values()) > 1.01  # the degeneracy costs something
+
+
+def test_tight_nuisance_priors_give_the_fixed_nuisance_errors(tmp_path):
+    # A prior of width sigma_b adds 1/sigma_b^2 to F_bb (Coe 2009); as sigma_b -> 0 the
+    # marginalised errors on the other parameters tend to those with b fixed.
+    settings, paths, _ = nuisance_suite(tmp_path, prior_sigma=1e-7)
+    out = run_forecast(settings, paths)
+    for name, without, ratios in out.degradation:
+        for q, r in ratios.items():
+            assert r == pytest.approx(1.0, abs=1e-6), (name, q)
+
+
+def test_duplicated_and_dependent_elements_are_dropped(tmp_path):
+    # an exact duplicate and a sum of two elements of the same statistic carry no information
+    # and make the sample covariance singular (common practice: remove them before inverting)
+    settings, paths, _, _ = linear_suite(tmp_path, n_fid=300)
+    for name, path in list(paths.items()):
+        t, bins = read_stack(path)
+        v = t.values.copy()
+        v[:, 1] = v[:, 0]  # power_spectrum element 1 duplicates element 0
+        v[:, 6] = v[:, 4] + v[:, 5]  # peaks element 6 = 4 + 5
+        write_stack(path, fc.DataTable(v, t.labels, t.seeds, name=name), bins, model=name)
+    out = run_forecast(settings, paths)
+    assert list(out.labels["center"]) == [0.0, 2.0, 3.0, 4.0, 5.0]
+    assert any("exact linear combinations" in w for w in out.warnings)

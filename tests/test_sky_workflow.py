@@ -98,6 +98,10 @@ def test_changing_nside_reruns_shells_onward(sphere_run):
         (lambda c: c["statistics"]["power_spectrum"].update(ell_max=1000), "statistics.power_spectrum.ell_max"),
         (lambda c: c["survey"].update(catalog={"enabled": True}), "survey.catalog.enabled"),
         (lambda c: c["maps"].update(geometry="flat"), "maps.cmb_lensing"),
+        (lambda c: c["survey"].update(systematics={"shear_bias": {"m": 0.01}}), "survey.systematics"),
+        (lambda c: c.update(suite={"kind": "files", "fiducial": c["suite"]["fiducial"],
+                                   "models": {m: {"snapshots": "x/*.hdf5"} for m in c["suite"]["models"]}}),
+         "shells.kind"),
     ],
 )
 def test_sphere_config_errors_name_the_key(edit, expected):

@@ -25,6 +25,7 @@ def tiny_config() -> dict:
     cfg["forecast"]["parameters"] = {"m_nu_eV": ["m_nu_zero"]}  # one-sided
     cfg["forecast"]["maps"] = ["bin1"]  # a data vector short enough for 20 realisations
     cfg["forecast"]["priors"] = {"sigma": {"m_nu_eV": 0.5}}
+    cfg["forecast"]["nuisance"] = {"alignment": {"step": 0.5, "prior_sigma": 1.0}}  # two observe variants
     return cfg
 
 
@@ -111,9 +112,13 @@ def test_stack_and_forecast_products(finished_run):
         assert f["values"].shape[0] == 10
     rows = (work / "results/forecast/errors.csv").read_text().splitlines()
     assert rows[0].startswith("parameter,combination")
-    names = [r.split(",")[1] for r in rows[1:]]
-    assert names == ["power_spectrum", "peaks", "power_spectrum+peaks", "power_spectrum + prior",
-                     "peaks + prior", "power_spectrum+peaks + prior"]
+    names = list(dict.fromkeys(r.split(",")[1] for r in rows[1:]))
+    base = ["power_spectrum", "peaks", "power_spectrum+peaks"]
+    assert names == base + [f"{b} + prior" for b in base] + [f"{b} + nuisances" for b in base] + [
+        f"{b} + prior + nuisances" for b in base]
+    degradation = (work / "results/forecast/degradation.csv").read_text().splitlines()
+    assert len(degradation) == 1 + 6  # 6 forecasts without nuisances x 1 cosmological parameter
+    assert all(float(r.split(",")[-1]) >= 1 - 1e-9 for r in degradation[1:])  # marginalising never helps
     with h5py.File(work / "results/forecast/forecast.h5") as f:
         warnings = f.attrs["warnings"]
         assert "one-sided" in warnings  # only m_nu_zero exists below the fiducial
@@ -133,7 +138,8 @@ def test_report_contains_the_figures(finished_run):
     proc = snakemake(work, cfg, "--report", "results/report.html")
     assert proc.returncode == 0, proc.stderr[-3000:]
     text = (work / "results/report.html").read_text()
-    for name in ("ellipses.png", "errors.html", "maps.png", "power_spectrum.png", "peaks.png", "provenance.html"):
+    for name in ("ellipses.png", "errors.html", "degradation.csv", "maps.png", "power_spectrum.png", "peaks.png",
+                 "provenance.html"):
         assert name in text, name
     assert "3. Forecast" in text and "Dodelson" in text  # categories and captions
 
@@ -148,7 +154,8 @@ def test_changing_power_spectrum_bins_reruns_only_measuring(finished_run):
     changed = copy.deepcopy(cfg)
     changed["statistics"]["power_spectrum"]["bins"] = 6
     jobs = planned_jobs(snakemake(work, changed, "-n"))
-    assert jobs == {"measure": 3, "stack": 2, "forecast": 1, "plot_statistics": 1, "provenance": 1, "all": 1}, jobs
+    assert jobs == {"measure": 3, "measure_variant": 2, "stack": 2, "stack_variant": 2, "forecast": 1,
+                    "plot_statistics": 1, "provenance": 1, "all": 1}, jobs
 
 
 def test_changing_the_plane_grid_reruns_slicing_onward(finished_run):
@@ -157,6 +164,7 @@ def test_changing_the_plane_grid_reruns_slicing_onward(finished_run):
     changed["planes"]["grid"] = 64
     jobs = planned_jobs(snakemake(work, changed, "-n"))
     assert jobs == {"slice": 6, "trace": 3, "observe": 3, "measure": 3, "stack": 2, "forecast": 1,
+                    "observe_variant": 2, "measure_variant": 2, "stack_variant": 2,
                     "plot_maps": 1, "plot_statistics": 1, "provenance": 1, "all": 1}, jobs
 
 
@@ -166,4 +174,5 @@ def test_changing_the_smoothing_reruns_observing_onward(finished_run):
     changed["survey"]["smoothing"]["scales_arcmin"] = [3.0]
     jobs = planned_jobs(snakemake(work, changed, "-n"))
     assert jobs == {"observe": 3, "measure": 3, "stack": 2, "forecast": 1, "plot_maps": 1,
+                    "observe_variant": 2, "measure_variant": 2, "stack_variant": 2,
                     "plot_statistics": 1, "provenance": 1, "all": 1}, jobs

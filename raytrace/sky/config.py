@@ -44,6 +44,12 @@ def check(cfg: dict) -> None:
         if key not in SPHERE_MASK_KEYS:
             raise RaytraceError(f"survey.mask.{key}: not available with maps.geometry: sphere "
                                 f"(sphere masks: {', '.join(SPHERE_MASK_KEYS)})")
+    if survey.get("systematics") is not None:
+        raise RaytraceError("survey.systematics: not available with maps.geometry: sphere (shear bias, photo-z "
+                            "and alignment models, and so forecast.nuisance, are built for flat maps only)")
+    if cfg["suite"].get("kind", "demo") == "files" and shells_section(cfg).get("kind", "tile") == "tile":
+        raise RaytraceError("shells.kind: tile reads the demo suite only; a files suite reaches the sphere "
+                            "through shells.kind: lightcone or healpix")
     if (survey.get("catalog") or {}).get("enabled"):
         raise RaytraceError("survey.catalog.enabled: mock catalogs are not available with maps.geometry: sphere")
     for name in stats:

@@ -1,8 +1,15 @@
 # Shape noise, mask and smoothing (and optionally catalogs and FITS images) on one map file.
 
 
-def observe_settings():
+def observe_settings(nuisance=None):
     survey = {k: v for k, v in config["survey"].items() if k != "sources"}  # sources: trace
+    systematics = rtsystematics.observe_settings(survey.pop("systematics", None), values=nuisance)
+    # without the variants; with a variant's nuisance values if given. Neutral values (no
+    # bias, nominal n(z), no alignment) observe exactly as no systematics, so they are left
+    # out and adding a systematics section for variants does not rerun the nominal stages.
+    n_bins = rtconfig.configured_bin_count(config["survey"].get("sources"))
+    if systematics is not None and not rtsystematics.Nuisance.from_settings(systematics, n_bins).is_null():
+        survey["systematics"] = systematics
     return as_json({"survey": survey, "seed": config["seed"]})
 
 

@@ -1,8 +1,19 @@
 # One snapshot -> lens planes along each axis (density contrast, potential derivatives).
+# With planes.mpi_tasks > 1 the job runs under the MPI launcher of resources.mpi.
+
+MPI_TASKS = config["planes"]["mpi_tasks"]
 
 
-def slice_settings():
-    return as_json(config["planes"])
+def slice_settings(model, index):
+    # what the job's result depends on (not the rank count: MPI planes equal serial ones)
+    settings = {k: v for k, v in config["planes"].items() if k != "mpi_tasks"}
+    settings["species"] = rtconfig.model_species(config, model)
+    if FILE_SUITE is not None:
+        m = config["suite"]["models"][model]
+        settings["format"] = FILE_SUITE.snapshot(model, index).fmt
+        settings["length_unit"] = m.get("length_unit")
+        settings["omega_m"] = rtconfig.model_parameters(config, model)["Omega_m"]
+    return as_json(settings)
 
 
 rule slice:
@@ -11,21 +22,26 @@ rule slice:
     output:
         f"{OUT}/planes/{{model}}/snap_{{index}}.h5",
     params:
-        settings=slice_settings(),
+        settings=lambda w: slice_settings(w.model, w.index),
     log:
         "logs/slice/{model}_{index}.log",
     benchmark:
         "logs/benchmarks/slice/{model}_{index}.tsv"
+    threads: MPI_TASKS
     resources:
-        # accumulators (3 axes x slabs x grid^2 float64) + float32 fields + one chunk
-        mem_mb=lambda w: 300
+        # per rank: accumulators (3 axes x slabs x grid^2 float64) + one chunk; rank 0 also
+        # the float32 fields
+        mem_mb=lambda w: 300 * MPI_TASKS
         + (
             3
-            * round(config["suite"]["box_mpc_h"] / config["planes"]["thickness_mpc_h"])
+            * round(BOX_MPC_H / config["planes"]["thickness_mpc_h"])
             * config["planes"]["grid"] ** 2
-            * (8 + 6 * 4)
-            + config["planes"]["chunk_particles"] * 64
+            * (8 * MPI_TASKS + 6 * 4)
+            + config["planes"]["chunk_particles"] * 64 * MPI_TASKS
         )
         // 2**20,
+        mpi=MPIEXEC,
+        tasks=MPI_TASKS,
     shell:
-        "{RAYTRACE} slice --settings {params.settings:q} --snapshot {input:q} --output {output:q} 2> {log:q}"
+        ("{resources.mpi} -n {resources.tasks} " if MPI_TASKS > 1 else "")
+        + "{RAYTRACE} slice --settings {params.settings:q} --snapshot {input:q} --output {output:q} 2> {log:q}"

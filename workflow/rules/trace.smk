@@ -1,15 +1,27 @@
 # A batch of realisations of one model: random plane choices, multi-plane or Born tracing.
 
 
-def trace_settings(model):
-    return as_json(
-        {
-            "cosmology": rtconfig.model_parameters(config, model),
-            "maps": config["maps"] | {"realizations": None, "realizations_per_job": None},  # counts do not change a map
-            "sources": config["survey"].get("sources"),
-            "seed": config["seed"],
-        }
-    )
+def trace_settings(model, batch):
+    settings = {
+        "cosmology": rtconfig.model_parameters(config, model),
+        "maps": config["maps"] | {"realizations": None, "realizations_per_job": None},  # counts do not change a map
+        "sources": config["survey"].get("sources"),
+        "seed": config["seed"],
+    }
+    # only the systematics keys that change the traced maps (nuisance values: observe)
+    systematics = config["survey"].get("systematics")
+    traced = rtsystematics.trace_settings(systematics)
+    if traced and not needs_variant_maps(model, batch):
+        traced = rtsystematics.nominal_trace_settings(systematics, traced)
+    if traced:
+        settings["systematics"] = traced
+    return as_json(settings)
+
+
+def needs_variant_maps(model, batch):
+    """Derivative-step bins and alignment maps are traced where variants observe them: the
+    variant models' first maps.realizations realisations (unless nominal values need them)."""
+    return model in variant_models() and int(batch) < config["maps"]["realizations"] // PER_JOB
 
 
 rule trace:
@@ -18,7 +30,7 @@ rule trace:
     output:
         batch_outputs(f"{OUT}/maps/{{model}}/r{{batch}}.h5"),
     params:
-        settings=lambda w: trace_settings(w.model),
+        settings=lambda w: trace_settings(w.model, w.batch),
         realizations=batch_realizations,
         outputs=lambda w, output: quoted(output),
     log:
