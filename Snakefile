@@ -23,18 +23,27 @@ import raytrace.systematics as rtsystematics
 from raytrace.errors import RaytraceError
 
 try:
-    # our validator first: one line naming the key; snakemake's then fills defaults
+    # our validator first: one line naming the key; it also fills the defaults
+    # (snakemake's would add demo-only defaults to a files suite)
     rtconfig.validate(config)
 except RaytraceError as exc:
     sys.exit(f"raytrace: configuration error: {exc}")
-validate(config, "config/schema.yaml")
+validate(config, "config/schema.yaml", set_default=False)
 config = rtconfig.validate(config)
 
 
 include: "workflow/rules/common.smk"
 include: "workflow/rules/simulate.smk"
-include: "workflow/rules/slice.smk"
-include: "workflow/rules/trace.smk"
+if config["maps"]["geometry"] == "sphere":  # full-sky HEALPix shells instead of lens planes
+
+    include: "workflow/rules/sky.smk"
+
+else:
+
+    include: "workflow/rules/slice.smk"
+    include: "workflow/rules/trace.smk"
+
+
 include: "workflow/rules/observe.smk"
 include: "workflow/rules/measure.smk"
 include: "workflow/rules/systematics.smk"

@@ -19,6 +19,7 @@ from pathlib import Path
 from typing import Sequence
 
 from .errors import RaytraceError
+from .sky import cli as sky_cli
 
 
 class Log:
@@ -27,17 +28,35 @@ class Log:
     def __init__(self, stage: str):
         self.stage = stage
         self.t0 = time.perf_counter()
+        self.muted = False  # set on MPI ranks other than 0
 
     def __call__(self, message: str) -> None:
+        if self.muted:
+            return
         print(f"[{self.stage} {time.perf_counter() - self.t0:7.1f} s] {message}", file=sys.stderr, flush=True)
 
     def finish(self) -> None:
         from . import __version__
 
-        peak_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-        self(f"done: wall time {time.perf_counter() - self.t0:.2f} s, peak memory {peak_kb / 1024:.1f} MiB")
+        self(f"done: wall time {time.perf_counter() - self.t0:.2f} s, peak memory {peak_memory_mib():.1f} MiB")
         # which package and machine ran the job (a cluster job may see another installation)
         self(f"raytrace {__version__} from {Path(__file__).resolve().parent} on {socket.gethostname()}")
+
+
+def peak_memory_mib() -> float:
+    """Peak resident memory of this process image.
+
+    Linux's ``VmHWM`` where available: ``ru_maxrss`` survives fork and exec, so a job
+    started by a large parent (Snakemake, a benchmark) would report the parent's size.
+    """
+    try:
+        with open("/proc/self/status") as f:
+            for line in f:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
 def _settings(text: str) -> dict:
@@ -59,7 +78,14 @@ def cmd_validate(args) -> None:
     from . import config
 
     cfg = config.load(args.config)
-    print(json.dumps(cfg, indent=1) if args.show else f"{args.config}: valid")
+    found = ""
+    if cfg["suite"]["kind"] == "files":  # the snapshots are part of what must be valid
+        from .filesuite import discover
+
+        suite = discover(cfg)
+        counts = ", ".join(f"{m}: {len(s)}" for m, s in suite.models.items())
+        found = f" (snapshots {counts}; box {suite.box_mpc_h:g} Mpc/h)"
+    print(json.dumps(cfg, indent=1) if args.show else f"{args.config}: valid{found}")
 
 
 def cmd_resources(args) -> None:
@@ -80,26 +106,56 @@ def cmd_simulate(args, log: Log) -> None:
     generate_model(
         cosmo, box_mpc_h=s["box_mpc_h"], particles_per_side=s["particles_per_side"],
         snapshot_redshifts=s["snapshot_redshifts"], seed=s["seed"], directory=args.outdir,
-        files_per_snapshot=s["files_per_snapshot"], lpt_order=s["lpt_order"], workers=_workers(), log=log,
+        files_per_snapshot=s["files_per_snapshot"], lpt_order=s["lpt_order"],
+        neutrino_particles=bool(s.get("neutrino_particles", False)), workers=_workers(), log=log,
     )
 
 
 def cmd_slice(args, log: Log) -> None:
+    import numpy as np
+
+    from .deposit import DEPOSIT_PLANES, load_plane_kernel
     from .hdf5 import atomic_h5
+    from .parallel import collective, world
     from .planes import slice_snapshot, write_planes
     from .snapshots import read_header
+    from .snapshots._check import position_range
 
+    comm = world()
     s = _settings(args.settings)
-    header = read_header(args.snapshot, s.get("format", "hdf5"), s.get("length_unit"))
-    log(f"snapshot z = {header.redshift:g}, box {header.box_mpc_h:g} Mpc/h, particles {header.n_total}")
+    log.muted = comm.rank != 0  # one log: rank 0's
+    if s.get("assignment") in DEPOSIT_PLANES:  # compiled kernels loaded once, before the clock starts
+        load_plane_kernel(s["assignment"])
+        position_range(np.zeros((1, 3)))
+    t_start, cpu_start = time.perf_counter(), time.process_time()
+    startup = t_start - log.t0  # logged at the end: an input error stays the only line on stderr
+    # rank 0 reads the headers (one pass over the files' markers) and hands them to the others
+    header = comm.bcast(collective(comm, lambda: read_header(args.snapshot, s.get("format", "hdf5"), s.get("length_unit"))
+                                   if comm.rank == 0 else None))
+    log(f"snapshot z = {header.redshift:g}, box {header.box_mpc_h:g} Mpc/h, particles {header.n_total}, "
+        f"format {header.fmt}" + (f", {comm.size} MPI ranks" if comm.size > 1 else ""))
+    omega_m = s.get("omega_m")
+    if omega_m is not None and abs(header.omega_m / omega_m - 1) > 1e-3:
+        log(f"note: the header's Omega0 = {header.omega_m:g} differs from the model's Omega_m = {omega_m:g}; "
+            "the contrast is taken relative to the model's")
     planes = slice_snapshot(
         header, grid=s["grid"], thickness_mpc_h=s["thickness_mpc_h"], species=s["species"],
-        assignment=s["assignment"], fmt=s.get("format", "hdf5"), chunk_particles=s["chunk_particles"],
-        workers=_workers(), log=log,
+        assignment=s["assignment"], chunk_particles=s["chunk_particles"], workers=_workers(),
+        omega_m=omega_m, log=log, comm=comm,
     )
-    with atomic_h5(args.output, stage="slice", settings=s, inputs=args.snapshot) as f:
-        write_planes(f, planes)
-    log(f"{planes.n_slabs} slabs x 3 axes of {planes.grid}^2 written to {args.output}")
+
+    def write() -> None:
+        if comm.rank == 0:
+            with atomic_h5(args.output, stage="slice", settings=s, inputs=args.snapshot) as f:
+                write_planes(f, planes)
+            log(f"{planes.n_slabs} slabs x 3 axes of {planes.grid}^2 written to {args.output}; "
+                f"deposited species {s['species']} hold {planes.deposited_fraction:.4f} of the mean matter density")
+
+    collective(comm, write)  # a failure on rank 0 (disk full ...) must not leave the others waiting
+    cpu = comm.allgather(time.process_time() - cpu_start)
+    log(f"slicing took {time.perf_counter() - t_start:.2f} s (headers, deposit, reduction, potentials, writing; "
+        f"{comm.size} rank{'s' if comm.size > 1 else ''}); cpu time per rank: {', '.join(f'{c:.2f}' for c in cpu)} s; "
+        f"start-up before it (imports, MPI, compiled kernels; interpreter excluded) {startup:.2f} s")
 
 
 def cmd_trace(args, log: Log) -> None:
@@ -185,8 +241,15 @@ def _source_bins(sources):
 
 def cmd_observe(args, log: Log) -> None:
     from .observe import observe
+    from .sky import is_sphere_file
 
     s = _settings(args.settings)
+    if is_sphere_file(args.maps):  # the full-sky branch (raytrace.sky)
+        from .sky.survey import observe as observe_sphere
+
+        observe_sphere(args.maps, args.output, s["survey"], seed=s["seed"], realization=args.realization,
+                       base_dir=Path.cwd(), fits_path=args.fits, log=log)
+        return
     catalogs = (args.catalog, args.catalog_fits) if args.catalog else None
     observe(args.maps, args.output, s["survey"], seed=s["seed"], realization=args.realization, base_dir=Path.cwd(),
             catalog_paths=catalogs, fits_path=args.fits, log=log)
@@ -199,6 +262,13 @@ def cmd_measure(args, log: Log) -> None:
     from .hdf5 import atomic_h5, open_input, write_dataset
 
     s = _settings(args.settings)
+    from .sky import is_sphere_file
+
+    if is_sphere_file(args.maps):  # the full-sky branch (raytrace.sky)
+        from .sky.statistics import measure as measure_sphere
+
+        measure_sphere(args.maps, args.output, s, log=log)
+        return
     with open_input(args.maps) as f:
         for key in ("kappa", "kappa_smoothed", "mask", "noise_sigma"):
             if key not in f:
@@ -370,6 +440,7 @@ def build_parser() -> argparse.ArgumentParser:
     pv = sub.add_parser("provenance", help="configuration and software versions of the run (HTML)")
     pv.add_argument("--config", required=True, help="the run's configuration as JSON")
     pv.add_argument("--output", required=True)
+    sky_cli.add_parsers(sub)  # shells, trace-sphere (the full-sky branch)
     return p
 
 
@@ -383,6 +454,8 @@ BATCHED = {
     "observe": ("realization", "maps", "output", "catalog", "catalog_fits", "fits"),
     "measure": ("maps", "output"),
 }
+COMMANDS.update(sky_cli.COMMANDS)
+BATCHED.update(sky_cli.BATCHED)
 
 
 def per_realization(args: argparse.Namespace) -> list[argparse.Namespace]:
@@ -395,6 +468,19 @@ def per_realization(args: argparse.Namespace) -> list[argparse.Namespace]:
         if len(getattr(args, k)) != n:
             raise RaytraceError(f"--{k.replace('_', '-')}: {len(getattr(args, k))} values for {n} outputs")
     return [argparse.Namespace(**{**vars(args), **{k: getattr(args, k)[i] for k in keys}}) for i in range(n)]
+
+
+def _rank() -> int:
+    from .parallel import launched_by_mpi
+
+    if not launched_by_mpi():
+        return 0
+    try:
+        from mpi4py import MPI
+
+        return MPI.COMM_WORLD.Get_rank()
+    except ImportError:
+        return 0
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -412,7 +498,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         log.finish()
         return 0
     except RaytraceError as exc:
-        print(f"raytrace {args.command}: error: {exc}", file=sys.stderr)
+        if _rank() == 0:  # under MPI every rank has the error; one line is printed
+            print(f"raytrace {args.command}: error: {exc}", file=sys.stderr)
         return 2
 
 

@@ -47,11 +47,18 @@ def describe_error(error) -> str:
     return f"{path or '<top level>'}: {error.message}"
 
 
+def _resolve(ref: str, root: Mapping) -> Mapping:
+    """The part of the schema a local JSON pointer (``#/definitions/...``) names."""
+    node: Any = root
+    for part in ref.lstrip("#/").split("/"):
+        node = node[part]
+    return node
+
+
 def _set_defaults(instance: Any, sch: Mapping, root: Mapping) -> None:
     """Fill defaults from the schema (what ``snakemake.utils.validate(set_default=True)`` does)."""
     if "$ref" in sch:
-        name = sch["$ref"].split("/")[-1]
-        sch = root["definitions"][name]
+        sch = _resolve(sch["$ref"], root)
     for sub in sch.get("allOf", []):
         _set_defaults(instance, sub, root)
     if isinstance(instance, dict):
@@ -76,12 +83,42 @@ def validate(config: Mapping[str, Any]) -> dict:
     errors = sorted(validator.iter_errors(config), key=lambda e: (len(list(e.absolute_path)), _key_path(e)))
     if errors:
         raise RaytraceError(describe_error(jsonschema.exceptions.best_match(errors)))
+    _check_suite_kind(config)
     cfg = copy.deepcopy(dict(config))
     _set_defaults(cfg, sch, sch)
+    if cfg["suite"]["kind"] == "files":  # defaults of demo-only keys do not apply
+        for key in DEMO_ONLY_KEYS:
+            cfg["suite"].pop(key, None)
     _check_semantics(cfg)
+    _check_geometry(cfg)
     _check_realizations(cfg)
     _check_forecast(cfg)
     return cfg
+
+
+#: suite keys that only a demo suite has (a files suite reads them from the snapshot headers)
+DEMO_ONLY_KEYS = ("box_mpc_h", "particles_per_side", "files_per_snapshot", "lpt_order", "snapshot_redshifts",
+                  "neutrino_particles")
+#: model keys that only a files suite has
+FILE_MODEL_KEYS = ("snapshots", "format", "length_unit", "species")
+
+
+def _check_suite_kind(config: Mapping) -> None:
+    """Keys that belong to the other kind of suite, checked before defaults are filled."""
+    suite = config["suite"]
+    files = suite["kind"] == "files"
+    for name, model in suite["models"].items():
+        for key in FILE_MODEL_KEYS:
+            if not files and key in (model or {}):
+                raise RaytraceError(f"suite.models.{name}.{key}: only for suite.kind: files")
+        if files and "snapshots" not in (model or {}):
+            raise RaytraceError(f"suite.models.{name}.snapshots: required key is missing (suite.kind: files)")
+    if files:
+        for key in DEMO_ONLY_KEYS:
+            if key in suite:
+                raise RaytraceError(
+                    f"suite.{key}: only for suite.kind: demo (a files suite reads the box and redshifts from its headers)"
+                )
 
 
 def load(path: str | os.PathLike) -> dict:
@@ -118,7 +155,26 @@ def model_cosmology(cfg: Mapping, model: str) -> Cosmology:
 
 
 def snapshot_redshifts(cfg: Mapping) -> list[float]:
+    """The demo suite's snapshot redshifts, increasing (a files suite has them from its headers)."""
     return sorted(float(z) for z in cfg["suite"]["snapshot_redshifts"])
+
+
+def model_species(cfg: Mapping, model: str) -> list[int]:
+    """Particle species deposited for ``model``.
+
+    A files model may set its own ``species`` (default ``planes.species``). In a demo
+    suite with neutrino particles, a model with massless neutrinos has none, so species
+    2 is dropped for it: its neutrinos are radiation, not matter.
+    """
+    species = list(cfg["planes"]["species"])
+    m = cfg["suite"]["models"][model] or {}
+    if cfg["suite"]["kind"] == "files":
+        return list(m.get("species", species))
+    from .demo import NEUTRINO_SPECIES
+
+    if model_parameters(cfg, model)["m_nu_eV"] == 0.0 and NEUTRINO_SPECIES in species and len(species) > 1:
+        species.remove(NEUTRINO_SPECIES)
+    return species
 
 
 @dataclass(frozen=True)
@@ -167,36 +223,60 @@ def check_sources_within_planes(source_redshifts, snapshot_z) -> None:
             )
 
 
-def _check_semantics(cfg: dict) -> None:
-    suite = cfg["suite"]
-    for name, offsets in suite["models"].items():
-        for key in offsets or {}:
-            if key not in PARAMETER_NAMES:
-                raise RaytraceError(f"suite.models.{name}.{key}: unknown parameter")
-    if "snapshot_redshifts" not in suite:
-        raise RaytraceError("suite.snapshot_redshifts: required key is missing")
-    zs = suite["snapshot_redshifts"]
-    if len(set(zs)) != len(zs):
-        raise RaytraceError("suite.snapshot_redshifts: redshifts must be distinct")
-    box, t = float(suite["box_mpc_h"]), float(cfg["planes"]["thickness_mpc_h"])
-    n_slabs = box / t
-    if abs(n_slabs - round(n_slabs)) > 1e-6 or round(n_slabs) < 1:
-        raise RaytraceError(f"planes.thickness_mpc_h: {t} does not divide suite.box_mpc_h = {box}")
-    srcs = cfg["maps"]["source_redshifts"]
-    if sorted(srcs) != list(srcs) or len(set(srcs)) != len(srcs):
-        raise RaytraceError("maps.source_redshifts: must be distinct and increasing")
-    check_sources_within_planes(srcs, snapshot_redshifts(cfg))
-    for name in suite["models"]:
-        model_cosmology(cfg, name)  # rejects impossible parameter combinations
+def check_source_range(cfg: dict, z_top: float) -> None:
+    """Sources and the n(z) grid end at the highest snapshot redshift; fills ``survey.sources.z_max``.
+
+    On the sphere, user light cones and HEALPix shells are checked against their own depth by the
+    trace stage, so only tiled shells bound ``maps.source_redshifts`` here.
+    """
+    sphere = cfg["maps"]["geometry"] == "sphere"
+    if not sphere or (cfg.get("shells") or {}).get("kind", "tile") == "tile":
+        check_sources_within_planes(cfg["maps"]["source_redshifts"], [z_top])
     sources = cfg.get("survey", {}).get("sources")
     if sources is not None:
-        z_top = max(snapshot_redshifts(cfg))
         sources.setdefault("z_max", z_top)
         if sources["z_max"] > z_top + 1e-9:
             raise RaytraceError(
                 f"survey.sources.z_max: {sources['z_max']} lies beyond the last lens plane "
                 f"(the highest snapshot redshift, z = {z_top:g})"
             )
+
+
+def _check_semantics(cfg: dict) -> None:
+    suite = cfg["suite"]
+    for name, offsets in suite["models"].items():
+        for key in offsets or {}:
+            if key not in PARAMETER_NAMES and key not in FILE_MODEL_KEYS:
+                raise RaytraceError(f"suite.models.{name}.{key}: unknown parameter")
+    srcs = cfg["maps"]["source_redshifts"]
+    if sorted(srcs) != list(srcs) or len(set(srcs)) != len(srcs):
+        raise RaytraceError("maps.source_redshifts: must be distinct and increasing")
+    for name in suite["models"]:
+        model_cosmology(cfg, name)  # rejects impossible parameter combinations
+    if suite["kind"] == "demo":
+        if "snapshot_redshifts" not in suite:
+            raise RaytraceError("suite.snapshot_redshifts: required key is missing")
+        zs = suite["snapshot_redshifts"]
+        if len(set(zs)) != len(zs):
+            raise RaytraceError("suite.snapshot_redshifts: redshifts must be distinct")
+        box, t = float(suite["box_mpc_h"]), float(cfg["planes"]["thickness_mpc_h"])
+        n_slabs = box / t
+        sphere = cfg["maps"]["geometry"] == "sphere"  # shells have their own thickness
+        if not sphere and (abs(n_slabs - round(n_slabs)) > 1e-6 or round(n_slabs) < 1):
+            raise RaytraceError(f"planes.thickness_mpc_h: {t} does not divide suite.box_mpc_h = {box}")
+        from .demo import NEUTRINO_SPECIES
+
+        if not suite["neutrino_particles"] and any(t != 1 for t in cfg["planes"]["species"]):
+            raise RaytraceError(
+                f"planes.species: the demo suite writes species 1 only"
+                f" (species {NEUTRINO_SPECIES}, neutrinos, with suite.neutrino_particles: true)"
+            )
+        if suite["neutrino_particles"] and any(t not in (1, NEUTRINO_SPECIES) for t in cfg["planes"]["species"]):
+            raise RaytraceError(f"planes.species: the demo suite writes species 1 and {NEUTRINO_SPECIES} only")
+        # a files suite checks these once its headers are read (raytrace.filesuite)
+        check_source_range(cfg, max(snapshot_redshifts(cfg)))
+    sources = cfg.get("survey", {}).get("sources")
+    if sources is not None:
         bins = sources.get("bins") or {}
         if "edges" in bins and "n_bins" in bins:
             raise RaytraceError("survey.sources.bins: give edges or n_bins, not both")
@@ -209,6 +289,13 @@ def _check_semantics(cfg: dict) -> None:
         raise RaytraceError("statistics.power_spectrum.ell_max: must exceed ell_min")
     if ps and ps.get("ell_edges") is not None and list(ps["ell_edges"]) != sorted(set(ps["ell_edges"])):
         raise RaytraceError("statistics.power_spectrum.ell_edges: must be strictly increasing")
+
+
+def _check_geometry(cfg: dict) -> None:
+    """Keys of the full-sky branch and of the flat one used with the other geometry."""
+    from .sky.config import check
+
+    check(cfg)
 
 
 def configured_bin_count(sources: Mapping | None) -> int:
@@ -246,7 +333,23 @@ def map_labels(cfg: Mapping) -> list[str]:
         bins = sources.get("bins") or {}
         n_bins = len(bins["edges"]) - 1 if "edges" in bins else int(bins.get("n_bins", 1))
         labels += [f"bin{i}" for i in range(n_bins)]
+    if cfg["maps"].get("cmb_lensing"):
+        labels.append("cmb")  # the full-sky branch's CMB-lensing map (raytrace.sky.cmb)
     return labels
+
+
+def map_pixel_count(cfg: Mapping) -> int:
+    """Pixels of one map: pixels^2 on the flat sky, 12 nside^2 on the sphere."""
+    if cfg["maps"].get("geometry", "flat") == "sphere":
+        return 12 * int(cfg["maps"]["nside"]) ** 2
+    return int(cfg["maps"]["pixels"]) ** 2
+
+
+def map_area_deg2(cfg: Mapping) -> float:
+    """Area of one map before masking: the flat field, or the whole sky."""
+    if cfg["maps"].get("geometry", "flat") == "sphere":
+        return 4.0 * np.pi * (180.0 / np.pi) ** 2
+    return float(cfg["maps"]["field_deg"]) ** 2
 
 
 def fiducial_model(cfg: Mapping) -> str:

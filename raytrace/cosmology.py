@@ -193,3 +193,22 @@ class LinearPower:
     def total(self, z: float, k_h_mpc: np.ndarray) -> np.ndarray:
         """Total matter including massive neutrinos."""
         return self._interp["total"].P(z, k_h_mpc)
+
+    def nu_over_cb(self, z: float, k_h_mpc: np.ndarray) -> np.ndarray:
+        r"""Ratio of camb's massive-neutrino to cold-matter transfer functions, :math:`T_\nu/T_{cb}`.
+
+        Taken at the computed redshift nearest ``z`` (snapshot redshifts are computed
+        exactly), interpolated linearly in :math:`\ln k` and held constant beyond the
+        computed wavenumbers (1 on large scales, where neutrinos cluster like cold matter).
+        """
+        data = self._transfer()
+        zs = np.asarray(self.results.transfer_redshifts)
+        iz = int(np.argmin(np.abs(zs - z)))
+        k = data.transfer_z("k/h", iz)
+        ratio = data.transfer_z("delta_nu", iz) / data.transfer_z("delta_nonu", iz)
+        return np.interp(np.log(np.asarray(k_h_mpc, dtype=float)), np.log(k), ratio)
+
+    def _transfer(self):
+        if not hasattr(self, "_transfer_data"):
+            self._transfer_data = self.results.get_matter_transfer_data()
+        return self._transfer_data

@@ -19,9 +19,18 @@ redshift), the displacement is
 
 using the Einstein–de Sitter approximation :math:`D_2 = -\tfrac{3}{7}D_1^2`
 (Bouchet et al. 1995). Particles carry the cold-matter mass
-:math:`\Omega_{cb}\rho_{\rm crit}L^3/N^3`; neutrinos are unclustered in this suite,
-and ``Omega0`` in the header is the total matter density, so slicing adds the
-neutrinos as a uniform background (see :mod:`raytrace.planes`).
+:math:`\Omega_{cb}\rho_{\rm crit}L^3/N^3`, and ``Omega0`` in the header is the total
+matter density, so slicing the cold matter alone adds the neutrinos as a uniform
+background (see :mod:`raytrace.planes`).
+
+With ``neutrino_particles`` a second species (``PartType2``) of :math:`N^3` particles
+of mass :math:`\Omega_\nu\rho_{\rm crit}L^3/N^3` starts on the same lattice and is
+displaced to first order by the neutrino density
+:math:`\delta_\nu(\mathbf k) = [T_\nu(k, z)/T_{cb}(k, z)]\,\delta_{cb}(\mathbf k)`,
+with camb's transfer functions at the snapshot redshift and the same white-noise
+phases (linear theory: neutrinos follow the cold-matter potential wells on large
+scales and free-stream out of them on small ones; their thermal motions are not
+sampled). A model with massless neutrinos gets no neutrino particles.
 
 References
 ----------
@@ -41,12 +50,20 @@ import scipy.fft
 from .cosmology import Cosmology
 from .snapshots import RHO_CRIT_1E10_MSUN_H_PER_MPC_H3
 from .snapshots.hdf5 import write_snapshot
+from .snapshots.legacy_binary import write_snapshot_legacy
+
+#: particle species of the demo's neutrinos (PartType2 in the HDF5 layout)
+NEUTRINO_SPECIES = 2
 
 
-def snapshot_paths(directory: str | Path, index: int, n_files: int) -> list[Path]:
-    """File names of snapshot ``index`` of a demo model (one name for every stage)."""
+def snapshot_paths(directory: str | Path, index: int, n_files: int, fmt: str = "hdf5") -> list[Path]:
+    """File names of snapshot ``index`` of a demo model (one name for every stage).
+
+    HDF5 files are ``snap_<index>.<file>.hdf5``, legacy binary ones ``snap_<index>.<file>``.
+    """
     d = Path(directory)
-    return [d / f"snap_{index:03d}.{j}.hdf5" for j in range(n_files)]
+    suffix = ".hdf5" if fmt == "hdf5" else ""
+    return [d / f"snap_{index:03d}.{j}{suffix}" for j in range(n_files)]
 
 
 def phases_seed(seed: int) -> np.random.SeedSequence:
@@ -132,6 +149,11 @@ def cold_particle_mass(cosmo: Cosmology, box: float, n: int) -> float:
     return cosmo.Omega_cb * RHO_CRIT_1E10_MSUN_H_PER_MPC_H3 * box**3 / n**3
 
 
+def neutrino_particle_mass(cosmo: Cosmology, box: float, n: int) -> float:
+    r"""Mass of one neutrino particle in 1e10 Msun/h (:math:`\Omega_\nu` from camb)."""
+    return cosmo.Omega_nu * RHO_CRIT_1E10_MSUN_H_PER_MPC_H3 * box**3 / n**3
+
+
 def generate_model(
     cosmo: Cosmology,
     *,
@@ -142,24 +164,43 @@ def generate_model(
     directory: str | Path,
     files_per_snapshot: int = 2,
     lpt_order: int = 2,
+    neutrino_particles: bool = False,
+    fmt: str = "hdf5",
     workers: int = 1,
     log: Callable[[str], None] = lambda s: None,
 ) -> list[list[Path]]:
-    """Write every snapshot of one model; returns the file lists, one per snapshot."""
+    """Write every snapshot of one model; returns the file lists, one per snapshot.
+
+    ``fmt`` is ``hdf5`` or ``legacy-binary`` (float32 positions, little-endian, plain
+    block order, Mpc/h); both hold the same particles.
+    """
+    if fmt not in ("hdf5", "legacy-binary"):
+        raise ValueError(f"fmt must be 'hdf5' or 'legacy-binary', got {fmt!r}")
     zs = sorted(float(z) for z in snapshot_redshifts)
     power = cosmo.linear_power(zs, kmax_h_mpc=max(30.0, 2 * np.pi * particles_per_side / box_mpc_h * 1.8))
     noise_k = white_noise_modes(particles_per_side, seed, workers)
-    mass = cold_particle_mass(cosmo, box_mpc_h, particles_per_side)
+    masses = {1: cold_particle_mass(cosmo, box_mpc_h, particles_per_side)}
+    with_nu = neutrino_particles and cosmo.m_nu_eV > 0
+    if with_nu:
+        masses[NEUTRINO_SPECIES] = neutrino_particle_mass(cosmo, box_mpc_h, particles_per_side)
     written = []
     for i, z in enumerate(zs):
         psi = lpt_displacement(noise_k, box_mpc_h, lambda k, z=z: power.cb(z, k), lpt_order, workers)
-        pos = particle_positions(psi, box_mpc_h)
+        positions = {1: particle_positions(psi, box_mpc_h)}
         del psi
-        paths = snapshot_paths(directory, i, files_per_snapshot)
-        write_snapshot(
-            paths, {1: pos}, {1: mass}, box_mpc_h=box_mpc_h, redshift=z, omega_m=cosmo.Omega_m,
-            omega_lambda=1.0 - cosmo.Omega_m, h=cosmo.h,
-        )
+        if with_nu:
+            # same phases, amplitude scaled by T_nu / T_cb (> 0 at every k), first order
+            p_nu = lambda k, z=z: power.cb(z, k) * power.nu_over_cb(z, k) ** 2  # noqa: E731
+            psi = lpt_displacement(noise_k, box_mpc_h, p_nu, 1, workers)
+            positions[NEUTRINO_SPECIES] = particle_positions(psi, box_mpc_h)
+            del psi
+        paths = snapshot_paths(directory, i, files_per_snapshot, fmt)
+        header = dict(redshift=z, omega_m=cosmo.Omega_m, omega_lambda=1.0 - cosmo.Omega_m, h=cosmo.h)
+        if fmt == "hdf5":
+            write_snapshot(paths, positions, masses, box_mpc_h=box_mpc_h, **header)
+        else:
+            write_snapshot_legacy(paths, positions, masses, box=box_mpc_h, **header)
         written.append(paths)
-        log(f"snapshot {i} (z = {z:g}): {particles_per_side}^3 particles written to {paths[0].parent}")
+        log(f"snapshot {i} (z = {z:g}): {particles_per_side}^3 particles"
+            f"{' of each of species 1 and 2' if with_nu else ''} written to {paths[0].parent}")
     return written

@@ -294,7 +294,8 @@ def write_products(products: ForecastProducts, *, h5_path, csv_path, html_path, 
     _write_html(html_path, p)
     scale = np.array([PARAMETER_SCALES.get(q, 1.0) for q in p.parameters])
     k = len(p.parameters)  # cosmological parameters first; nuisances marginalised over
-    plot_fisher_ellipses({r.name: r.covariance[:k, :k] * np.outer(scale, scale) for r in p.all_results()}, p.parameters,
+    # the configured combinations (with priors and nuisances they are in the error table)
+    plot_fisher_ellipses({r.name: r.covariance[:k, :k] * np.outer(scale, scale) for r in p.results}, p.parameters,
                          [p.fiducial_values[q] * scale[i] for i, q in enumerate(p.parameters)], png_path,
                          parameter_labels={q: PARAMETER_LABELS.get(q, q) for q in p.parameters})
 

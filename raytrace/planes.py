@@ -21,6 +21,14 @@ stored in float32 (``dphi_dx``, ``dphi_dy``, ``d2phi_dxx``, ``d2phi_dyy``,
 ``d2phi_dxy``). Tracing multiplies them by :math:`3\Omega_m (H_0/c)^2 (1+z)` to get the
 lensing potential of the plane (Schneider, Ehlers & Falco 1992, ch. 9).
 
+Memory and parallelism. Particles stream through in chunks, so a slicing job holds the
+float64 mass accumulator, the float32 outputs and one chunk, whatever the snapshot
+size. Under MPI (:mod:`raytrace.parallel`) each rank deposits its contiguous share of
+the particles into its own accumulator; each plane is then summed onto the rank that
+computes its potential (planes are dealt out round-robin), and rank 0 gathers the
+float32 results and writes the file. Sums run in float64, so MPI and serial planes
+agree to float32 rounding.
+
 References
 ----------
 Schneider, P., Ehlers, J. & Falco, E. E. 1992, *Gravitational Lenses*, Springer.
@@ -37,6 +45,7 @@ import scipy.fft
 
 from .deposit import DEPOSIT_PLANES, PLANE_AXES
 from .errors import RaytraceError
+from .parallel import SerialComm, collective
 from .snapshots import RHO_CRIT_1E10_MSUN_H_PER_MPC_H3, SnapshotHeader, iter_chunks
 
 DERIVATIVES = ("dphi_dx", "dphi_dy", "d2phi_dxx", "d2phi_dyy", "d2phi_dxy")
@@ -53,6 +62,8 @@ class PlaneSet:
     redshift: float
     omega_m: float
     deposited_fraction: float
+    #: transverse mass assignment (its window is sinc^p per axis, raytrace.deposit.WINDOW_ORDER)
+    assignment: str = "cic"
 
     @property
     def grid(self) -> int:
@@ -70,34 +81,65 @@ def deposit_snapshot(
     thickness_mpc_h: float,
     species: Sequence[int] = (1,),
     assignment: str = "cic",
-    fmt: str = "hdf5",
+    fmt: str | None = None,
     chunk_particles: int = 1 << 21,
     log: Callable[[str], None] = lambda s: None,
+    comm: SerialComm | None = None,
 ) -> tuple[np.ndarray, float]:
-    """Projected mass per cell, (3, n_slabs, grid, grid), and the deposited total mass."""
+    """Projected mass per cell, (3, n_slabs, grid, grid), and the deposited total mass.
+
+    With an MPI ``comm`` each rank deposits its share of the particles; plane i of the
+    flattened (3 * n_slabs) planes is then summed over the ranks onto rank
+    ``i % comm.size`` only (the rank that computes its potential), and the total mass
+    is summed onto every rank.
+    """
+    comm = comm or SerialComm()
     if assignment not in DEPOSIT_PLANES:
-        raise RaytraceError(f"planes.assignment: unknown assignment {assignment!r}")
+        raise RaytraceError(f"planes.assignment: unknown assignment {assignment!r} (known: {', '.join(DEPOSIT_PLANES)})")
     box = header.box_mpc_h
     n_slabs = int(round(box / thickness_mpc_h))
     if n_slabs < 1 or abs(n_slabs * thickness_mpc_h - box) > 1e-6 * box:
         raise RaytraceError(f"planes.thickness_mpc_h: {thickness_mpc_h} does not divide the box side {box} of {header.files[0]}")
     kernel = DEPOSIT_PLANES[assignment]
     mass_grid = np.zeros((3, n_slabs, grid, grid), dtype=np.float64)
-    total_mass, n_done, t0 = 0.0, 0, time.perf_counter()
-    n_all = sum(header.n_total.get(t, 0) for t in species)
-    for chunk in iter_chunks(header, species, fmt=fmt, chunk_size=chunk_particles):
-        kernel(chunk.positions, chunk.masses, box, grid, n_slabs, mass_grid)
-        total_mass += float(chunk.masses.sum())
-        n_done += len(chunk.masses)
-        log(f"deposited {n_done}/{n_all} particles ({time.perf_counter() - t0:.1f} s)")
+    totals = [0.0, 0]
+
+    def deposit() -> None:
+        t0 = last = time.perf_counter()
+        for chunk in iter_chunks(header, species, fmt=fmt, chunk_size=chunk_particles, rank=comm.rank, size=comm.size):
+            kernel(chunk.positions, chunk.masses, box, grid, n_slabs, mass_grid)
+            totals[0] += float(chunk.masses.sum())
+            totals[1] += len(chunk.masses)
+            del chunk  # peak memory: the grids and one chunk, not two
+            now = time.perf_counter()
+            if now - last > 5.0:  # progress every few seconds, not every chunk
+                log(f"deposited {totals[1]} particles{_of_rank(comm)} ({now - t0:.1f} s)")
+                last = now
+        log(f"deposited {totals[1]} particles{_of_rank(comm)} in {time.perf_counter() - t0:.1f} s")
+
+    # a reading error on any rank (bad file, NaN position ...) stops every rank
+    collective(comm, deposit)
+    total_mass = comm.sum_scalar(totals[0])
+    flat = mass_grid.reshape(3 * n_slabs, grid, grid)
+    for i in range(flat.shape[0]):
+        comm.sum_to(flat[i], root=i % comm.size)
     return mass_grid, total_mass
 
 
+def _of_rank(comm: SerialComm) -> str:
+    return f" on rank 0 of {comm.size}" if comm.size > 1 else ""
+
+
 def contrast_from_mass(
-    mass_grid: np.ndarray, total_mass: float, box_mpc_h: float, omega_m: float
+    mass_grid: np.ndarray, total_mass: float, box_mpc_h: float, omega_m: float, n_slabs: int | None = None
 ) -> tuple[np.ndarray, float]:
-    """Slab-averaged total-matter contrast from the deposited mass per cell (see module notes)."""
-    n_slabs, grid = mass_grid.shape[1], mass_grid.shape[-1]
+    """Slab-averaged total-matter contrast from the deposited mass per cell (see module notes).
+
+    ``mass_grid`` is (..., grid, grid) with slabs of thickness box / ``n_slabs``
+    (default: its axis 1, as in (3, n_slabs, grid, grid)).
+    """
+    n_slabs = mass_grid.shape[1] if n_slabs is None else n_slabs
+    grid = mass_grid.shape[-1]
     t = box_mpc_h / n_slabs
     cell_area = (box_mpc_h / grid) ** 2
     rho_dep = total_mass / box_mpc_h**3
@@ -148,32 +190,72 @@ def slice_snapshot(
     thickness_mpc_h: float,
     species: Sequence[int] = (1,),
     assignment: str = "cic",
-    fmt: str = "hdf5",
+    fmt: str | None = None,
     chunk_particles: int = 1 << 21,
     workers: int = 1,
+    omega_m: float | None = None,
     log: Callable[[str], None] = lambda s: None,
-) -> PlaneSet:
-    """Deposit a snapshot and compute every plane's contrast and potential derivatives."""
+    comm: SerialComm | None = None,
+) -> PlaneSet | None:
+    """Deposit a snapshot and compute every plane's contrast and potential derivatives.
+
+    ``omega_m`` (default: the header's ``Omega0``) sets the mean matter density the
+    contrast is relative to. Under MPI every rank must call this; rank 0 gets the
+    :class:`PlaneSet` and the other ranks ``None``.
+    """
     mass_grid, total = deposit_snapshot(
         header, grid=grid, thickness_mpc_h=thickness_mpc_h, species=species, assignment=assignment,
-        fmt=fmt, chunk_particles=chunk_particles, log=log,
+        fmt=fmt, chunk_particles=chunk_particles, log=log, comm=comm,
     )
-    return planes_from_mass(mass_grid, total, header.box_mpc_h, header.redshift, header.omega_m, workers=workers)
+    om = header.omega_m if omega_m is None else float(omega_m)
+    planes = planes_from_mass(mass_grid, total, header.box_mpc_h, header.redshift, om, workers=workers, comm=comm)
+    if planes is not None:
+        planes.assignment = assignment
+    return planes
 
 
 def planes_from_mass(
-    mass_grid: np.ndarray, total_mass: float, box_mpc_h: float, redshift: float, omega_m: float, workers: int = 1
-) -> PlaneSet:
-    delta, fraction = contrast_from_mass(mass_grid, total_mass, box_mpc_h, omega_m)
-    n_slabs = delta.shape[1]
+    mass_grid: np.ndarray,
+    total_mass: float,
+    box_mpc_h: float,
+    redshift: float,
+    omega_m: float,
+    workers: int = 1,
+    comm: SerialComm | None = None,
+) -> PlaneSet | None:
+    """Contrast and potential derivatives of every plane of a (3, n_slabs, grid, grid) mass grid.
+
+    Under MPI plane i (of the flattened 3 * n_slabs) is computed by rank ``i % size``
+    from its summed mass (see :func:`deposit_snapshot`) and gathered on rank 0, which
+    returns the :class:`PlaneSet`; the other ranks return ``None``.
+    """
+    comm = comm or SerialComm()
+    if not omega_m > 0:
+        raise RaytraceError(f"omega_m: the matter density must be positive to define a contrast, got {omega_m}")
+    n_slabs, grid = mass_grid.shape[1], mass_grid.shape[-1]
     t = box_mpc_h / n_slabs
-    derivs = {name: np.empty(delta.shape, dtype=np.float32) for name in DERIVATIVES}
-    for a in range(3):
-        for s in range(n_slabs):
-            d = potential_derivatives(delta[a, s] * t, box_mpc_h, workers=workers)
-            for name in DERIVATIVES:
-                derivs[name][a, s] = d[name]
-    return PlaneSet(delta.astype(np.float32), derivs, box_mpc_h, t, redshift, omega_m, fraction)
+    flat = mass_grid.reshape(3 * n_slabs, grid, grid)
+    n_planes = flat.shape[0]
+    owner = lambda i: i % comm.size  # noqa: E731
+    mine: dict[str, dict[int, np.ndarray]] = {name: {} for name in ("delta", *DERIVATIVES)}
+    for i in range(n_planes):
+        if owner(i) != comm.rank:
+            continue
+        delta, _ = contrast_from_mass(flat[i], total_mass, box_mpc_h, omega_m, n_slabs=n_slabs)
+        mine["delta"][i] = delta.astype(np.float32)
+        d = potential_derivatives(delta * t, box_mpc_h, workers=workers)
+        for name in DERIVATIVES:
+            mine[name][i] = d[name].astype(np.float32)
+    fraction = total_mass / box_mpc_h**3 / (omega_m * RHO_CRIT_1E10_MSUN_H_PER_MPC_H3)
+    out = {}
+    for name, arrays in mine.items():
+        full = np.empty((n_planes, grid, grid), dtype=np.float32) if comm.rank == 0 else None
+        comm.gather_arrays(arrays, full, n_planes, owner)
+        out[name] = full.reshape(3, n_slabs, grid, grid) if full is not None else None
+    if comm.rank != 0:
+        return None
+    derivs = {name: out[name] for name in DERIVATIVES}
+    return PlaneSet(out["delta"], derivs, box_mpc_h, t, redshift, omega_m, fraction)
 
 
 DERIVATIVE_UNITS = {"dphi_dx": "(Mpc/h)^2", "dphi_dy": "(Mpc/h)^2", "d2phi_dxx": "Mpc/h", "d2phi_dyy": "Mpc/h", "d2phi_dxy": "Mpc/h"}
@@ -196,5 +278,6 @@ def write_planes(f, planes: PlaneSet) -> None:
     f.attrs["redshift"] = planes.redshift
     f.attrs["omega_m"] = planes.omega_m
     f.attrs["deposited_fraction"] = planes.deposited_fraction
+    f.attrs["assignment"] = planes.assignment
     f.attrs["plane_axes"] = np.array(PLANE_AXES)
     f.attrs["layout"] = "arrays [axis, slab, iy, ix]; plane x, y = box axes plane_axes[axis]; potential: lap(phi) = delta * thickness"

@@ -59,6 +59,12 @@ def plot_example_maps(maps_files: Mapping[str, str], observed_files: Mapping[str
     """Noiseless (top) and observed (bottom) convergence of one map label, one column per model."""
     from .hdf5 import open_input
     from .observe import read_traced
+    from .sky import is_sphere_file
+
+    if maps_files and is_sphere_file(next(iter(maps_files.values()))):  # full-sky maps (raytrace.sky)
+        from .sky.report import plot_example_maps as plot_sphere
+
+        return plot_sphere(maps_files, observed_files, label, path, smoothing_arcmin)
 
     plt = _pyplot()
     models = list(maps_files)

@@ -7,12 +7,13 @@ fixed start-up cost plus the work the stage does, in the sizes of the configurat
 ========== =================================================================================
 symbol     meaning (configuration key)
 ========== =================================================================================
-N          particles per side (``suite.particles_per_side``); N³ particles per snapshot
-n_z        snapshots (``suite.snapshot_redshifts``)
+N³         particles per snapshot: ``suite.particles_per_side``³ (twice that with demo neutrino
+           particles); a files suite's largest snapshot, from its headers
+n_z        snapshots per model (``suite.snapshot_redshifts``, or the files found)
 G          plane pixels per side (``planes.grid``)
 n_s        slabs per box side (``suite.box_mpc_h / planes.thickness_mpc_h``)
 n_p        lens planes to the farthest source, χ(z_max) / thickness
-P          map pixels per side (``maps.pixels``)
+P²         map pixels (``maps.pixels``²; on the sphere 12 ``maps.nside``²)
 M_t        maps traced per realisation: sources + bins × n(z) variants (× 2 with alignments)
 M_o        maps observed per realisation: sources + bins
 S          smoothing scales (``survey.smoothing.scales_arcmin``)
@@ -24,10 +25,17 @@ n_e        elements of one realisation's data vector (all statistics, every map 
 CPU seconds t and memory m (MB) of one job, with the constants below:
 
 - simulate (one model, every snapshot): t = 7 + 1e-6 N³ n_z, m = 200 + 2e-4 N³
-- slice (one snapshot): t = 2 + 5e-7 N³ + 5e-8 · 3 n_s G² log2 G,
-  m = 200 + (3 n_s G² · 32 B + min(chunk_particles, N³) · 64 B)
+- slice (one snapshot, T MPI tasks): t = 2 + 5e-7 N³/T + 5e-8 · 3 n_s G² log2 G,
+  m = T (200 + 3 n_s G² · 8 B + min(chunk_particles, N³/T) · 64 B) + 3 n_s G² · 24 B
+  (every rank holds its own float64 accumulators and a chunk; rank 0 also the float32 fields)
 - trace (R realisations): t = 5 + R n_p (1e-3 + 2e-8 P² M_t + 1.2e-8 G²),
   m = 270 + P² (150 M_t + 300) B + 48 G² B
+- shells (full sky, R realisations, n_sh shells to χ_max): t = 5 + 2e-7 N³ n_z + R (I / 1.2e7 +
+  2e-8 n_sh P²), with I = N³ (4π/3) χ_max³ / L³ the particle images binned per realisation,
+  m = 300 + (90 N³ + 16 P²) B (one snapshot read, sorted and rotated; one float64 map)
+- trace_sphere (R realisations): with τ = 1.5e-8 nside³ s one spherical-harmonic transform,
+  Born t = 5 + R M_t (2 n_sh P² · 1e-8 + 10 τ); multi-plane adds R n_sh (5 τ + 3e-6 P²);
+  m = 300 + P² (32 M_t + 100) B (Born) or 300 + P² (32 M_t + 350) B (multi-plane)
 - observe, observe_variant: t = 3 + R (0.1 + 2e-8 P² log2 P · M_o (S + 1) + 2e-6 n_gal),
   m = 230 + P² M_o (S + 4) · 24 B + 200 n_gal B, with n_gal the catalog galaxies
 - measure, measure_variant: t = 3 + R (0.05 + 4e-8 P² log2 P · M_o (S + 1)),
@@ -61,7 +69,7 @@ from typing import Any, Mapping
 from . import config as rtconfig
 
 RULES = (
-    "simulate", "slice", "trace", "observe", "measure", "observe_variant", "measure_variant",
+    "simulate", "slice", "trace", "shells", "trace_sphere", "observe", "measure", "observe_variant", "measure_variant",
     "stack", "stack_variant", "forecast", "plot_maps", "plot_statistics", "provenance",
 )
 MEMORY_MARGIN = 1.2
@@ -137,14 +145,35 @@ class Sizes:
     models: int
     statistics: int
     combinations: int
-    n_side: int  # N
+    n_side: int  # N (the cube root of the particles of a files suite)
+    sphere: bool = False
+    nside: int = 0
+    shells: int = 0  # n_sh
+    images: float = 0.0  # I
 
     @classmethod
-    def from_config(cls, cfg: Mapping[str, Any]) -> "Sizes":
+    def from_config(cls, cfg: Mapping[str, Any], files: Any = None) -> "Sizes":
+        """Sizes of ``cfg``; ``files`` is the :class:`raytrace.filesuite.FileSuite` of a files suite."""
         suite, planes, maps = cfg["suite"], cfg["planes"], cfg["maps"]
         survey = cfg.get("survey") or {}
-        n = int(suite["particles_per_side"])
-        snapshot_z = rtconfig.snapshot_redshifts(cfg)
+        if suite.get("kind", "demo") == "files":
+            if files is None:
+                from .filesuite import discover
+
+                files = discover(dict(cfg))
+            snaps = [s for group in files.models.values() for s in group]
+            particles = max(sum(s.n_total.values()) for s in snaps)
+            snapshot_z = sorted({float(s.redshift) for s in files.models[next(iter(files.models))]})
+            n_snapshots = max(len(group) for group in files.models.values())
+            files_per = max(len(s.files) for s in snaps)
+            box = float(files.box_mpc_h)
+        else:
+            particles = int(suite["particles_per_side"]) ** 3 * (2 if suite.get("neutrino_particles") else 1)
+            snapshot_z = rtconfig.snapshot_redshifts(cfg)
+            n_snapshots = len(snapshot_z)
+            files_per = int(suite.get("files_per_snapshot", 1))
+            box = float(suite["box_mpc_h"])
+        n = max(1, round(particles ** (1 / 3)))
         sources = survey.get("sources")
         n_bins = rtconfig.configured_bin_count(sources)
         n_src = len(maps["source_redshifts"])
@@ -152,14 +181,23 @@ class Sizes:
                                                                        if sources else []))
         omega_m = float(suite["fiducial"]["Omega_m"])
         thickness = float(planes["thickness_mpc_h"])
-        n_planes = max(1, math.ceil(_comoving_distance(omega_m, z_max) / thickness))
+        chi_max = _comoving_distance(omega_m, z_max)
+        n_planes = max(1, math.ceil(chi_max / thickness))
+        sphere = maps.get("geometry", "flat") == "sphere"
+        nside = int(maps.get("nside") or 0)
+        n_shells, images = 0, 0.0
+        if sphere:
+            shells = cfg.get("shells") or {}
+            n_shells = max(1, math.ceil(chi_max / float(shells.get("thickness_mpc_h", thickness))))
+            images = particles * 4.0 * math.pi / 3.0 * chi_max**3 / box**3
         # n(z) variants and alignment maps the trace stage may add to each bin
         systematics = survey.get("systematics") or {}
         photoz = systematics.get("photoz") or {}
         variants = 1 + 2 * bool(photoz.get("derivative_step")) + 2 * bool(photoz.get("stretch_derivative_step"))
         alignment = 2 if systematics.get("intrinsic_alignment") is not None else 1
-        traced = n_src + n_bins * variants * alignment
-        observed = n_src + n_bins
+        cmb = 1 if maps.get("cmb_lensing") else 0  # the full-sky CMB-lensing map
+        traced = n_src + n_bins * variants * alignment + cmb
+        observed = n_src + n_bins + cmb
         scales = len((survey.get("smoothing") or {}).get("scales_arcmin") or [])
         catalog = survey.get("catalog") or {}
         galaxies = 0
@@ -168,15 +206,22 @@ class Sizes:
             galaxies = int(float(density) * (60.0 * float(maps["field_deg"])) ** 2)
         forecast = cfg.get("forecast") or {}
         return cls(
-            particles=n**3, snapshots=len(snapshot_z), files_per_snapshot=int(suite.get("files_per_snapshot", 1)),
+            particles=particles, snapshots=n_snapshots, files_per_snapshot=files_per,
             chunk=int(planes.get("chunk_particles", 2**21)), grid=int(planes["grid"]),
-            slabs=max(1, round(float(suite["box_mpc_h"]) / thickness)), planes=n_planes, pixels=int(maps["pixels"]),
+            slabs=max(1, round(box / thickness)), planes=n_planes,
+            pixels=int(math.isqrt(12 * nside**2)) if sphere else int(maps["pixels"]),
             traced_maps=traced, observed_maps=observed, scales=scales, per_job=rtconfig.realizations_per_job(cfg),
             catalog_galaxies=galaxies, counts=rtconfig.realization_counts(cfg),
             elements=data_vector_length(cfg.get("statistics") or {}, observed, scales),
             models=len(rtconfig.model_names(cfg)), statistics=len(cfg.get("statistics") or {}),
             combinations=len(forecast.get("combinations") or []), n_side=n,
+            sphere=sphere, nside=nside, shells=n_shells, images=images,
         )
+
+    @property
+    def map_pixels(self) -> float:
+        """P²: pixels of one map."""
+        return 12.0 * self.nside**2 if self.sphere else float(self.pixels) ** 2
 
 
 def data_vector_length(statistics: Mapping[str, Any], maps: int, scales: int) -> int:
@@ -199,18 +244,20 @@ def data_vector_length(statistics: Mapping[str, Any], maps: int, scales: int) ->
     return max(1, total)
 
 
-def estimate(rule: str, cfg: Mapping[str, Any], *, model: str | None = None, tasks: int = 1) -> Estimate:
+def estimate(rule: str, cfg: Mapping[str, Any], *, model: str | None = None, tasks: int = 1,
+             files: Any = None) -> Estimate:
     """CPU time, memory and threads of one job of ``rule`` (for ``model`` where it matters).
 
-    ``tasks`` is the number of MPI tasks of a slicing job (1 without MPI).
+    ``tasks`` is the number of MPI tasks of a slicing job (1 without MPI); ``files`` the
+    discovered files suite (read from the configuration when not given).
     """
-    z = Sizes.from_config(cfg)
+    z = Sizes.from_config(cfg, files)
     log2 = lambda x: math.log2(max(2, x))  # noqa: E731
     most = max(z.counts.values())
     n_files = z.counts.get(model, most) if model is not None else most
     if rule in ("stack_variant",):
         n_files = int(cfg["maps"]["realizations"])
-    p2 = float(z.pixels) ** 2
+    p2 = z.map_pixels
     g2 = float(z.grid) ** 2
     if rule == "simulate":
         threads = min(8, max(2, z.n_side // 128))
@@ -219,8 +266,19 @@ def estimate(rule: str, cfg: Mapping[str, Any], *, model: str | None = None, tas
         tasks = max(1, int(tasks))
         particles = z.particles / tasks
         t = 2 + 5e-7 * particles + 5e-8 * 3 * z.slabs * g2 * log2(z.grid)
-        m = 200 + (3 * z.slabs * g2 * 32 + min(z.chunk, particles) * 64) / _MB
+        m = tasks * (200 + (3 * z.slabs * g2 * 8 + min(z.chunk, particles) * 64) / _MB) + 3 * z.slabs * g2 * 24 / _MB
         return Estimate(rule, t, m)
+    if rule == "shells":
+        t = 5 + 2e-7 * z.particles * z.snapshots + z.per_job * (z.images / 1.2e7 + 2e-8 * z.shells * p2)
+        return Estimate(rule, t, 300 + (90 * z.particles + 16 * p2) / _MB)
+    if rule == "trace_sphere":
+        tau = 1.5e-8 * float(z.nside) ** 3
+        t = z.traced_maps * (2e-8 * z.shells * p2 + 10 * tau)
+        per_pixel = 100  # Born: the shell and a few float64 maps per source
+        if cfg["maps"].get("method") == "multi-plane":
+            t += z.shells * (5 * tau + 3e-6 * p2)
+            per_pixel = 350  # rays, Jacobians, start bases, interpolation weights, 9 shell fields
+        return Estimate(rule, 5 + z.per_job * t, 300 + p2 * (32 * z.traced_maps + per_pixel) / _MB)
     if rule == "trace":
         t = 5 + z.per_job * z.planes * (1e-3 + 2e-8 * p2 * z.traced_maps + 1.2e-8 * g2)
         m = 270 + (p2 * (150 * z.traced_maps + 300) + 48 * g2) / _MB
@@ -252,15 +310,29 @@ def estimate(rule: str, cfg: Mapping[str, Any], *, model: str | None = None, tas
     raise KeyError(f"no resource estimate for rule {rule!r}")
 
 
-def table(cfg: Mapping[str, Any]) -> list[dict[str, Any]]:
+def rules_of(cfg: Mapping[str, Any]) -> tuple[str, ...]:
+    """The rules a configuration's workflow has."""
+    sphere = cfg["maps"].get("geometry", "flat") == "sphere"
+    skipped = {"slice", "trace"} if sphere else {"shells", "trace_sphere"}
+    if cfg["suite"].get("kind", "demo") == "files":
+        skipped.add("simulate")
+    if not (cfg.get("survey") or {}).get("systematics"):
+        skipped |= {"observe_variant", "measure_variant", "stack_variant"}
+    if not cfg.get("forecast"):
+        skipped.add("forecast")
+    return tuple(r for r in RULES if r not in skipped)
+
+
+def table(cfg: Mapping[str, Any], files: Any = None) -> list[dict[str, Any]]:
     """One row per rule (and per model where the counts differ): what its first attempt asks for."""
     counts = rtconfig.realization_counts(cfg)
+    tasks = int(cfg["planes"].get("mpi_tasks", 1))
     rows = []
-    for rule in RULES:
+    for rule in rules_of(cfg):
         models = sorted(set(counts.values())) if rule == "stack" else [None]
         for n in models:
             model = next((m for m, c in counts.items() if c == n), None) if n is not None else None
-            e = estimate(rule, cfg, model=model)
+            e = estimate(rule, cfg, model=model, tasks=tasks if rule == "slice" else 1, files=files)
             rows.append({"rule": rule if n is None else f"{rule} ({n} realisations)", "threads": e.threads,
                          "cpu_s": e.cpu_s, **e.request()})
     return rows

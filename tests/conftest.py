@@ -53,6 +53,21 @@ class Suite:
                          alignment_bins=list(alignment_bins))
 
 
+def as_legacy(files, directory: Path) -> list[Path]:
+    """The snapshot ``files`` rewritten in the legacy binary layout (float32, little-endian, plain
+    block order) with the same particles in the same files (both writers split evenly)."""
+    from raytrace.snapshots import iter_chunks
+    from raytrace.snapshots.legacy_binary import write_snapshot_legacy
+
+    h = read_header(files)
+    pos = {t: np.concatenate([c.positions for c in iter_chunks(h, [t])]).astype(np.float32) for t in h.n_total}
+    paths = [Path(directory) / Path(f).name.removesuffix(".hdf5") for f in h.files]
+    Path(directory).mkdir(parents=True, exist_ok=True)
+    write_snapshot_legacy(paths, pos, {t: h.mass_table[t] for t in pos}, box=h.box_mpc_h, redshift=h.redshift,
+                          omega_m=h.omega_m, omega_lambda=h.omega_lambda, h=h.h)
+    return paths
+
+
 @pytest.fixture(scope="session")
 def suite(tmp_path_factory) -> Suite:
     """A 256 Mpc/h box with 128^3 particles at five redshifts, sliced into 64 Mpc/h planes."""
@@ -93,3 +108,42 @@ def finished_run(tmp_path_factory) -> FinishedRun:
     proc = snakemake(work, cfg)
     assert proc.returncode == 0, proc.stderr[-3000:]
     return FinishedRun(work, cfg, time.perf_counter() - t0)
+
+
+# ------------------------------------------------------------------------------------
+# full-sky branch
+@dataclass
+class SkySuite:
+    """A coarse demo suite for full-sky checks, with the shells of each realisation cached."""
+
+    cosmo: Cosmology
+    box: float
+    n_particles: int
+    snapshot_z: list[float]
+    snapshots: list[list[Path]]
+
+    def __post_init__(self):
+        self._shells = {}
+
+    def shells(self, realization: int, *, nside: int, z_max: float, thickness: float = 128.0, cone=None):
+        """(schedule, [contrast map per shell]) of one realisation, tiled from the snapshots."""
+        from raytrace.sky.shells import build_tiled, choose_shells, shell_schedule
+
+        key = (realization, nside, z_max, thickness, None if cone is None else (tuple(cone[0]), cone[1]))
+        if key not in self._shells:
+            sched = shell_schedule(self.cosmo, thickness, float(self.cosmo.comoving_distance(z_max)), self.snapshot_z)
+            choice = choose_shells(sched, self.box, 5, realization)
+            maps = [s.delta for s in build_tiled(sched, choice, self.snapshots, nside, cone=cone)]
+            self._shells[key] = (sched, maps)
+        return self._shells[key]
+
+
+@pytest.fixture(scope="session")
+def sky_suite(tmp_path_factory) -> SkySuite:
+    """A 512 Mpc/h box with 64^3 particles at z = 0, 0.5, 1: full-sky shells in seconds."""
+    root = tmp_path_factory.mktemp("sky_suite")
+    cosmo = Cosmology(**FIDUCIAL)
+    zs = [0.0, 0.5, 1.0]
+    snaps = generate_model(cosmo, box_mpc_h=512.0, particles_per_side=64, snapshot_redshifts=zs, seed=21,
+                           directory=root / "snapshots")
+    return SkySuite(cosmo, 512.0, 64, zs, snaps)

@@ -4,9 +4,15 @@ A ``Header`` group with attributes ``BoxSize``, ``Redshift``, ``Time``,
 ``NumPart_ThisFile``, ``NumPart_Total``, ``MassTable``, ``Omega0``, ``OmegaLambda``,
 ``HubbleParam``, ``NumFilesPerSnapshot``; particles of species ``t`` in
 ``PartType<t>/Coordinates`` (and ``PartType<t>/Masses`` where ``MassTable[t]`` is 0).
-Lengths are in Mpc/h unless ``Header`` (or a ``Units``/``Parameters`` group) carries
-``UnitLength_in_cm``, or the configuration gives ``length_unit``. Masses are in
-1e10 Msun/h (the layout's usual unit).
+Lengths are comoving, in h^-1 times ``UnitLength_in_cm`` when ``Header`` (or a
+``Units``/``Parameters`` group) carries it, else in the configured ``length_unit``,
+else in Mpc/h; a configured unit that contradicts ``UnitLength_in_cm`` is an error.
+Masses are in h^-1 times ``UnitMass_in_g`` when it is given, else in 1e10 Msun/h (the
+layout's usual unit). Values within 0.1% of 1 kpc, 1 Mpc or 1e10 Msun are taken as
+exactly those units (codes round the parsec and the solar mass differently: 1.989e43 g
+for 1e10 Msun is 3e-4 above the IAU value).
+Several species are read with their own masses: ``PartType<t>/Masses`` where present,
+else ``MassTable[t]``.
 """
 
 from __future__ import annotations
@@ -18,7 +24,17 @@ import h5py
 import numpy as np
 
 from ..errors import RaytraceError
-from . import LENGTH_UNITS, Chunk, SnapshotHeader, check_chunk
+from . import (
+    LENGTH_UNITS,
+    Chunk,
+    ChunkSpec,
+    FileSummary,
+    SnapshotHeader,
+    check_chunk,
+    check_species,
+    chunk_plan,
+    missing_file_names,
+)
 
 REQUIRED = (
     "BoxSize",
@@ -35,6 +51,10 @@ REQUIRED = (
 
 #: 1 Mpc in cm (IAU 2012 astronomical unit and parsec definitions)
 MPC_IN_CM = 3.0856775814913673e24
+#: 1e10 nominal solar masses in g (IAU 2015 Resolution B3, GM_sun over CODATA 2018 G)
+MASS_1E10_MSUN_IN_G = 1.98841e43
+#: relative tolerance within which a unit is taken as the named one
+UNIT_SNAP = 1e-3
 
 
 def _open(path: Path) -> h5py.File:
@@ -44,17 +64,65 @@ def _open(path: Path) -> h5py.File:
         raise RaytraceError(f"{path}: not a readable HDF5 snapshot ({exc})") from None
 
 
-def _length_factor(f: h5py.File, path: Path, length_unit: str | None) -> float:
-    if length_unit is not None:
-        if length_unit not in LENGTH_UNITS:
-            raise RaytraceError(f"length_unit: unknown unit {length_unit!r} (known: {', '.join(LENGTH_UNITS)})")
-        return LENGTH_UNITS[length_unit]
+def _unit_attr(f: h5py.File, name: str) -> float | None:
     for group in ("Header", "Units", "Parameters"):
-        if group in f and "UnitLength_in_cm" in f[group].attrs:
-            unit_cm = float(f[group].attrs["UnitLength_in_cm"])
-            # lengths in these files are comoving and in units of h^-1 (UnitLength_in_cm per h)
-            return unit_cm / MPC_IN_CM
-    return 1.0
+        if group in f and name in f[group].attrs:
+            return float(np.asarray(f[group].attrs[name]).ravel()[0])
+    return None
+
+
+def _snap(factor: float, named: float) -> float:
+    return named if abs(factor / named - 1.0) < UNIT_SNAP else factor
+
+
+def _length_factor(f: h5py.File, path: Path, length_unit: str | None) -> float:
+    if length_unit is not None and length_unit not in LENGTH_UNITS:
+        raise RaytraceError(f"length_unit: unknown unit {length_unit!r} (known: {', '.join(LENGTH_UNITS)})")
+    unit_cm = _unit_attr(f, "UnitLength_in_cm")
+    if unit_cm is None:
+        return LENGTH_UNITS[length_unit] if length_unit is not None else 1.0
+    if not (np.isfinite(unit_cm) and unit_cm > 0):
+        raise RaytraceError(f"{path}: UnitLength_in_cm is {unit_cm!r}, expected a positive value")
+    # lengths in these files are comoving and in units of h^-1 (UnitLength_in_cm per h)
+    factor = unit_cm / MPC_IN_CM
+    for named in LENGTH_UNITS.values():
+        factor = _snap(factor, named)
+    if length_unit is not None and abs(factor / LENGTH_UNITS[length_unit] - 1.0) > UNIT_SNAP:
+        raise RaytraceError(
+            f"{path}: length_unit {length_unit} contradicts the file's UnitLength_in_cm = {unit_cm:g} "
+            f"({factor:g} Mpc/h); leave length_unit out or correct it"
+        )
+    return factor
+
+
+def _mass_factor(f: h5py.File, path: Path) -> float:
+    unit_g = _unit_attr(f, "UnitMass_in_g")
+    if unit_g is None:
+        return 1.0
+    if not (np.isfinite(unit_g) and unit_g > 0):
+        raise RaytraceError(f"{path}: UnitMass_in_g is {unit_g!r}, expected a positive value")
+    return _snap(unit_g / MASS_1E10_MSUN_IN_G, 1.0)
+
+
+def file_summary(path: Path, length_unit: str | None) -> FileSummary:
+    """The snapshot-identifying header fields of one file."""
+    with _open(path) as f:
+        if "Header" not in f:
+            raise RaytraceError(f"{path}: no Header group")
+        attrs = f["Header"].attrs
+        for k in ("Redshift", "BoxSize", "NumFilesPerSnapshot", "NumPart_Total"):
+            if k not in attrs:
+                raise RaytraceError(f"{path}: Header is missing attribute {k}")
+        total = np.asarray(attrs["NumPart_Total"], dtype=np.int64)
+        if "NumPart_Total_HighWord" in attrs:
+            total = total + (np.asarray(attrs["NumPart_Total_HighWord"], dtype=np.int64) << 32)
+        return FileSummary(
+            path=path,
+            redshift=float(attrs["Redshift"]),
+            box_mpc_h=float(attrs["BoxSize"]) * _length_factor(f, path, length_unit),
+            num_files=int(attrs["NumFilesPerSnapshot"]),
+            n_total={t: int(n) for t, n in enumerate(total) if n > 0},
+        )
 
 
 def read_header(files: Sequence[Path], length_unit: str | None) -> SnapshotHeader:
@@ -79,6 +147,7 @@ def read_header(files: Sequence[Path], length_unit: str | None) -> SnapshotHeade
                     )
             if first is None:
                 factor = _length_factor(f, path, length_unit)
+                mass_factor = _mass_factor(f, path)
                 n_files = int(attrs["NumFilesPerSnapshot"])
                 total = np.asarray(attrs["NumPart_Total"], dtype=np.int64)
                 if "NumPart_Total_HighWord" in attrs:
@@ -91,13 +160,23 @@ def read_header(files: Sequence[Path], length_unit: str | None) -> SnapshotHeade
                     omega_lambda=float(attrs["OmegaLambda"]),
                     h=float(attrs["HubbleParam"]),
                     n_total={t: int(n) for t, n in enumerate(total) if n > 0},
-                    mass_table={t: float(m) for t, m in enumerate(np.asarray(attrs["MassTable"]))},
+                    mass_table={t: float(m) * mass_factor for t, m in enumerate(np.asarray(attrs["MassTable"]))},
                     length_to_mpc_h=factor,
+                    mass_to_1e10_msun_h=mass_factor,
                 )
+                first_attrs = {k: np.asarray(attrs[k]) for k in ("BoxSize", "Redshift", "NumPart_Total", "MassTable")}
+            else:
+                for k, v in first_attrs.items():
+                    if not np.array_equal(np.asarray(attrs[k]), v):
+                        raise RaytraceError(
+                            f"{path}: Header {k} is {np.asarray(attrs[k]).tolist()} but {v.tolist()} in {files[0]}"
+                        )
     assert first is not None
     if len(files) != n_files:
+        missing = missing_file_names(files, n_files)
+        detail = f" (missing: {', '.join(missing[:3])}{', ...' if len(missing) > 3 else ''})" if missing else ""
         raise RaytraceError(
-            f"{files[0]}: NumFilesPerSnapshot is {n_files} but {len(files)} file(s) of this snapshot were found"
+            f"{files[0]}: NumFilesPerSnapshot is {n_files} but {len(files)} file(s) of this snapshot were found{detail}"
         )
     for t, n in first.n_total.items():
         found = sum(pf.get(t, 0) for pf in per_file)
@@ -108,35 +187,54 @@ def read_header(files: Sequence[Path], length_unit: str | None) -> SnapshotHeade
 
 
 def iter_chunks(header: SnapshotHeader, species: list[int], chunk_size: int) -> Iterator[Chunk]:
-    for t in species:
-        if header.n_total.get(t, 0) == 0:
-            raise RaytraceError(f"{header.files[0]}: snapshot holds no particles of species {t} (PartType{t})")
-    for path, counts in zip(header.files, header.n_per_file):
-        with _open(path) as f:
-            for t in species:
-                n = counts.get(t, 0)
-                if n == 0:
-                    continue
-                coords = f[f"PartType{t}/Coordinates"]
-                masses = f[f"PartType{t}/Masses"] if f"PartType{t}/Masses" in f else None
-                if masses is None and header.mass_table.get(t, 0.0) <= 0.0:
-                    raise RaytraceError(f"{path}: MassTable[{t}] is 0 and PartType{t}/Masses is missing")
-                for start in range(0, n, chunk_size):
-                    stop = min(start + chunk_size, n)
-                    try:
-                        pos = np.asarray(coords[start:stop], dtype=np.float64)
-                        m = (
-                            np.asarray(masses[start:stop], dtype=np.float64)
-                            if masses is not None
-                            else np.full(stop - start, header.mass_table[t])
-                        )
-                    except OSError as exc:
-                        raise RaytraceError(f"{path}: cannot read PartType{t} ({exc})") from None
-                    if header.length_to_mpc_h != 1.0:
-                        pos *= header.length_to_mpc_h
-                    chunk = Chunk(t, pos, m)
-                    check_chunk(chunk, header, path)
-                    yield chunk
+    """All particles of ``species``, file by file, in chunks of at most ``chunk_size``."""
+    check_species(header, species)
+    yield from read_chunks(header, chunk_plan(header, species, chunk_size))
+
+
+def read_chunks(header: SnapshotHeader, specs: Sequence[ChunkSpec]) -> Iterator[Chunk]:
+    """The particles of each spec, in order; a file stays open for consecutive specs."""
+    f, open_index = None, -1
+    try:
+        for spec in specs:
+            path = header.files[spec.file_index]
+            if spec.file_index != open_index:
+                if f is not None:
+                    f.close()
+                f, open_index = _open(path), spec.file_index
+            t = spec.species
+            coords = f[f"PartType{t}/Coordinates"]
+            masses = f[f"PartType{t}/Masses"] if f"PartType{t}/Masses" in f else None
+            if masses is None and header.mass_table.get(t, 0.0) <= 0.0:
+                raise RaytraceError(f"{path}: MassTable[{t}] is 0 and PartType{t}/Masses is missing")
+            if masses is not None and masses.shape[0] != coords.shape[0]:
+                raise RaytraceError(
+                    f"{path}: PartType{t}/Masses holds {masses.shape[0]} values for {coords.shape[0]} particles"
+                )
+            if coords.ndim != 2 or coords.shape[1] != 3:
+                raise RaytraceError(f"{path}: PartType{t}/Coordinates has shape {coords.shape}, expected (n, 3)")
+            try:
+                pos = np.empty((spec.count, 3), dtype=np.float64)
+                coords.read_direct(pos, np.s_[spec.start : spec.stop])
+                if masses is not None:
+                    m = np.empty(spec.count, dtype=np.float64)
+                    masses.read_direct(m, np.s_[spec.start : spec.stop])
+                    if header.mass_to_1e10_msun_h != 1.0:
+                        m *= header.mass_to_1e10_msun_h
+                else:
+                    m = np.full(spec.count, header.mass_table[t])
+            except (OSError, TypeError) as exc:
+                raise RaytraceError(f"{path}: cannot read PartType{t} ({exc})") from None
+            if header.length_to_mpc_h != 1.0:
+                pos *= header.length_to_mpc_h
+            chunk = Chunk(t, pos, m)
+            check_chunk(chunk, header, path)
+            del pos, m
+            yield chunk
+            del chunk  # hold no particles while the next chunk is read
+    finally:
+        if f is not None:
+            f.close()
 
 
 def write_snapshot(

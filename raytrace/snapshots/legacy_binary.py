@@ -49,7 +49,7 @@ from typing import BinaryIO, Iterator, Mapping, Sequence
 import numpy as np
 
 from ..errors import RaytraceError
-from . import LENGTH_UNITS, Chunk, SnapshotHeader, check_chunk
+from . import LENGTH_UNITS, Chunk, ChunkSpec, FileSummary, SnapshotHeader, check_chunk, check_species, chunk_plan
 
 N_TYPES = 6
 HEADER_BYTES = 256
@@ -334,6 +334,19 @@ def _scan_file(path: Path) -> tuple[_RawHeader, _FileLayout, bool]:
     return hdr, layout, labelled
 
 
+def file_summary(path: Path, length_unit: str | None) -> FileSummary:
+    """The snapshot-identifying header fields of one file (every record marker checked)."""
+    factor = _length_factor(length_unit, path)
+    hdr, _, _ = _scan_file(path)
+    return FileSummary(
+        path=path,
+        redshift=hdr.redshift,
+        box_mpc_h=hdr.box * factor,
+        num_files=hdr.num_files,
+        n_total={t: n for t, n in enumerate(hdr.n_total) if n > 0},
+    )
+
+
 def read_header(files: Sequence[Path], length_unit: str | None) -> LegacyHeader:
     ordered = _order_files(files)
     factor = _length_factor(length_unit, ordered[0])
@@ -396,47 +409,49 @@ def _read_values(f: BinaryIO, path: Path, offset: int, dtype: np.dtype, count: i
 
 
 def iter_chunks(header: SnapshotHeader, species: list[int], chunk_size: int) -> Iterator[Chunk]:
-    if chunk_size < 1:
-        raise RaytraceError(f"chunk_size: must be at least 1, got {chunk_size}")
-    for t in species:
-        if header.n_total.get(t, 0) == 0:
-            raise RaytraceError(f"{header.files[0]}: snapshot holds no particles of species {t}")
+    """All particles of ``species``, file by file, in chunks of at most ``chunk_size``."""
+    check_species(header, species)
+    yield from read_chunks(header, chunk_plan(header, species, chunk_size))
+
+
+def read_chunks(header: SnapshotHeader, specs: Sequence[ChunkSpec]) -> Iterator[Chunk]:
+    """The particles of each spec, in order, read from file offsets (a file stays open for consecutive specs)."""
     layouts = header.layouts if isinstance(header, LegacyHeader) and header.layouts else None
     if layouts is None:  # a header rebuilt from its fields: find the blocks again
         layouts = [_scan_file(p)[1] for p in header.files]
-    for path, lay in zip(header.files, layouts):
-        try:
-            with open(path, "rb") as f:
-                for t in species:
-                    n = lay.npart[t]
-                    if n == 0:
-                        continue
-                    assert lay.pos_dtype is not None
-                    pos_start = lay.pos_offset + 3 * sum(lay.npart[:t]) * lay.pos_dtype.itemsize
-                    per_particle = lay.mass[t] == 0.0
-                    if per_particle:
-                        assert lay.mass_dtype is not None
-                        before = sum(lay.npart[u] for u in range(t) if lay.mass[u] == 0.0)
-                        mass_start = lay.mass_offset + before * lay.mass_dtype.itemsize
-                    for start in range(0, n, chunk_size):
-                        count = min(chunk_size, n - start)
-                        raw = _read_values(
-                            f, path, pos_start + 3 * start * lay.pos_dtype.itemsize, lay.pos_dtype, 3 * count, "POS"
-                        )
-                        pos = raw.astype(np.float64).reshape(count, 3)
-                        if header.length_to_mpc_h != 1.0:
-                            pos *= header.length_to_mpc_h
-                        if per_particle:
-                            m = _read_values(
-                                f, path, mass_start + start * lay.mass_dtype.itemsize, lay.mass_dtype, count, "MASS"
-                            ).astype(np.float64)
-                        else:
-                            m = np.full(count, lay.mass[t])
-                        chunk = Chunk(t, pos, m)
-                        check_chunk(chunk, header, path)
-                        yield chunk
-        except OSError as exc:
-            raise RaytraceError(f"{path}: cannot read snapshot file ({exc})") from None
+    f, open_index = None, -1
+    path = header.files[0]
+    try:
+        for spec in specs:
+            path, lay, t = header.files[spec.file_index], layouts[spec.file_index], spec.species
+            if spec.file_index != open_index:
+                if f is not None:
+                    f.close()
+                f, open_index = open(path, "rb"), spec.file_index
+            assert lay.pos_dtype is not None and spec.stop <= lay.npart[t]
+            item = lay.pos_dtype.itemsize
+            pos_start = lay.pos_offset + 3 * (sum(lay.npart[:t]) + spec.start) * item
+            raw = _read_values(f, path, pos_start, lay.pos_dtype, 3 * spec.count, "POS")
+            pos = raw.astype(np.float64).reshape(spec.count, 3)
+            if header.length_to_mpc_h != 1.0:
+                pos *= header.length_to_mpc_h
+            if lay.mass[t] == 0.0:
+                assert lay.mass_dtype is not None
+                before = sum(lay.npart[u] for u in range(t) if lay.mass[u] == 0.0)
+                mass_start = lay.mass_offset + (before + spec.start) * lay.mass_dtype.itemsize
+                m = _read_values(f, path, mass_start, lay.mass_dtype, spec.count, "MASS").astype(np.float64)
+            else:
+                m = np.full(spec.count, lay.mass[t])
+            chunk = Chunk(t, pos, m)
+            check_chunk(chunk, header, path)
+            del raw, pos, m
+            yield chunk
+            del chunk  # hold no particles while the next chunk is read
+    except OSError as exc:
+        raise RaytraceError(f"{path}: cannot read snapshot file ({exc})") from None
+    finally:
+        if f is not None:
+            f.close()
 
 
 # --------------------------------------------------------------------------- writing

@@ -22,7 +22,7 @@ def forecast_settings():
             "steps": rtconfig.forecast_steps(config),
             "fiducial_values": rtconfig.model_parameters(config, FIDUCIAL),
             "maps": forecast_maps(),
-            "map_area_deg2": config["maps"]["field_deg"] ** 2,
+            "map_area_deg2": rtconfig.map_area_deg2(config),
             # nuisance parameters: their steps are the fiducial's observe variants
             "nuisance": {
                 name: {

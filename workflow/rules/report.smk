@@ -3,7 +3,7 @@ from raytrace.report import report_defaults
 
 STATISTICS = list(config.get("statistics", {}))
 REPORT = report_defaults(config, MAP_LABELS, FIDUCIAL)
-AREA_FACTOR = (config.get("forecast") or {}).get("survey_area_deg2", config["maps"]["field_deg"] ** 2) / config["maps"]["field_deg"] ** 2
+AREA_FACTOR = (config.get("forecast") or {}).get("survey_area_deg2", rtconfig.map_area_deg2(config)) / rtconfig.map_area_deg2(config)
 
 
 def report_files():

@@ -1,8 +1,19 @@
 # One snapshot -> lens planes along each axis (density contrast, potential derivatives).
+# With planes.mpi_tasks > 1 the job runs under the MPI launcher of resources.mpi.
+
+MPI_TASKS = config["planes"]["mpi_tasks"]
 
 
-def slice_settings():
-    return as_json(config["planes"])
+def slice_settings(model, index):
+    # what the job's result depends on (not the rank count: MPI planes equal serial ones)
+    settings = {k: v for k, v in config["planes"].items() if k != "mpi_tasks"}
+    settings["species"] = rtconfig.model_species(config, model)
+    if FILE_SUITE is not None:
+        m = config["suite"]["models"][model]
+        settings["format"] = FILE_SUITE.snapshot(model, index).fmt
+        settings["length_unit"] = m.get("length_unit")
+        settings["omega_m"] = rtconfig.model_parameters(config, model)["Omega_m"]
+    return as_json(settings)
 
 
 rule slice:
@@ -11,13 +22,18 @@ rule slice:
     output:
         f"{OUT}/planes/{{model}}/snap_{{index}}.h5",
     params:
-        settings=slice_settings(),
+        settings=lambda w: slice_settings(w.model, w.index),
     log:
         "logs/slice/{model}_{index}.log",
     benchmark:
         "logs/benchmarks/slice/{model}_{index}.tsv"
-    threads: job_threads("slice")
+    threads: MPI_TASKS
     resources:
-        **job_resources("slice"),
+        **job_resources("slice", tasks=MPI_TASKS),
+        mpi=MPIEXEC,
+        tasks=MPI_TASKS,
+        # one CPU per MPI task on a cluster (the plugin would otherwise ask threads per task)
+        cpus_per_task=1,
     shell:
-        "{RAYTRACE} slice --settings {params.settings:q} --snapshot {input:q} --output {output:q} 2> {log:q}"
+        ("{resources.mpi} -n {resources.tasks} " if MPI_TASKS > 1 else "")
+        + "{RAYTRACE} slice --settings {params.settings:q} --snapshot {input:q} --output {output:q} 2> {log:q}"
