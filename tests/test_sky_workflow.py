@@ -68,8 +68,30 @@ def test_sphere_outputs(sphere_run):
     rows = (work / "results/forecast/errors.csv").read_text().splitlines()
     assert [r.split(",")[1] for r in rows[1:]] == ["power_spectrum", "peaks", "power_spectrum+peaks"]
     assert (work / "results/report/maps.png").stat().st_size > 1000
-    log = (work / "logs/trace/fiducial_b000.log").read_text()
+    log = (work / "logs/trace_sphere/fiducial_b000.log").read_text()
     assert "B/E power" in log and "peak memory" in log
+
+
+def test_sphere_jobs_fit_in_what_they_ask_for(sphere_run):
+    # the shells and trace_sphere estimates (raytrace/resources.py): peak memory within the
+    # request, CPU time within the time factor, as for the flat rules in test_workflow.py
+    import csv
+
+    from raytrace import resources as rr
+
+    work, cfg = sphere_run
+    full = rc.validate(copy.deepcopy(cfg))
+    seen = set()
+    for tsv in (work / "logs/benchmarks").rglob("*.tsv"):
+        rule = tsv.parent.name
+        model = next((m for m in full["suite"]["models"] if tsv.stem.startswith(m)), None)
+        want = rr.estimate(rule, full, model=model)
+        with open(tsv) as f:
+            row = next(csv.DictReader(f, delimiter="\t"))
+        assert float(row["max_rss"]) <= want.mem_mb, (tsv, row["max_rss"], want)
+        assert float(row["cpu_time"]) <= want.cpu_s * rr.TIME_FACTOR, (tsv, row["cpu_time"], want)
+        seen.add(rule)
+    assert {"shells", "trace_sphere", "observe", "measure"} <= seen
 
 
 def test_sphere_second_run_does_nothing(sphere_run):

@@ -199,7 +199,7 @@ def test_every_job_asks_for_the_resources_its_rule_computes(finished_run):
     work, cfg = finished_run
     full = rc.validate(copy.deepcopy(cfg))
     jobs = [j for j in dry_run_resources(snakemake(work, cfg, "-n", "--forceall")) if j["rule"] != "all"]
-    assert {j["rule"] for j in jobs} == set(rr.RULES)  # every rule of the workflow, each with its estimate
+    assert {j["rule"] for j in jobs} == set(rr.rules_of(full))  # every rule of the workflow, each with its estimate
     for job in jobs:
         want = rr.estimate(job["rule"], full, model=job["wildcards"].get("model"))
         assert (int(job["mem_mb"]), int(job["runtime"]), job["threads"]) == (

@@ -66,9 +66,9 @@ rule trace_sphere:
         realizations=batch_realizations,
         outputs=lambda w, output: quoted(output),
     log:
-        "logs/trace/{model}_b{batch}.log",
+        "logs/trace_sphere/{model}_b{batch}.log",
     benchmark:
-        "logs/benchmarks/trace/{model}_b{batch}.tsv"
+        "logs/benchmarks/trace_sphere/{model}_b{batch}.tsv"
     group:
         "batch"
     threads: job_threads("trace_sphere")

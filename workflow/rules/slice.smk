@@ -30,10 +30,9 @@ rule slice:
     threads: MPI_TASKS
     resources:
         **job_resources("slice", tasks=MPI_TASKS),
-        mpi=MPIEXEC,
-        tasks=MPI_TASKS,
-        # one CPU per MPI task on a cluster (the plugin would otherwise ask threads per task)
-        cpus_per_task=1,
+        # with MPI: the launcher, the tasks, and one CPU per task on a cluster (the SLURM
+        # plugin would otherwise ask for `threads` CPUs per task)
+        **({"mpi": MPIEXEC, "tasks": MPI_TASKS, "cpus_per_task": 1} if MPI_TASKS > 1 else {}),
     shell:
         ("{resources.mpi} -n {resources.tasks} " if MPI_TASKS > 1 else "")
         + "{RAYTRACE} slice --settings {params.settings:q} --snapshot {input:q} --output {output:q} 2> {log:q}"
