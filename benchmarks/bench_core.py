@@ -12,35 +12,13 @@ from __future__ import annotations
 
 import argparse
 import os
-import statistics
-import time
 
 import numpy as np
 import scipy.fft
 
 from raytrace.deposit import cic_2d
 from raytrace.tracing import N_STATE, multiplane_step, ray_grid
-
-
-def median_time(fn, repeats: int) -> float:
-    fn()  # warm-up (numba compilation, page faults)
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return statistics.median(times)
-
-
-def snapshot_particles(n_side: int, box: float) -> np.ndarray:
-    """Particles of a demo snapshot at z = 0 in the order a snapshot file stores them."""
-    from raytrace.cosmology import Cosmology
-    from raytrace import demo
-
-    cosmo = Cosmology(Omega_m=0.3, Omega_b=0.049, h=0.68, n_s=0.965, A_s=2.1e-9, m_nu_eV=0.1)
-    power = cosmo.linear_power([0.0])
-    psi = demo.lpt_displacement(demo.white_noise_modes(n_side, 1), box, lambda k: power.cb(0.0, k), 2)
-    return demo.particle_positions(psi, box).astype(np.float64)
+from timing import median_time, snapshot_particles
 
 
 def bench_deposit(label: str, x: np.ndarray, y: np.ndarray, box: float, grid: int, repeats: int) -> None:
@@ -111,7 +89,7 @@ def main() -> None:
     cases = [(64, 512)] if args.quick else [(128, 512), (192, 1024)]
     repeats, n_rays = (3, 512) if args.quick else (5, 2048)
     for n_side, grid in cases:
-        pos = snapshot_particles(n_side, box)
+        pos = snapshot_particles(n_side, box).astype(np.float64)
         # the real workload: a snapshot's particles in their stored (Lagrangian) order
         bench_deposit("snapshot order", pos[:, 0].copy(), pos[:, 1].copy(), box, grid, repeats)
         # stress case: as many particles in uniformly random order (every update a cache miss)

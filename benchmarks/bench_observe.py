@@ -10,13 +10,13 @@ like. Run as ``python benchmarks/bench_observe.py``.
 from __future__ import annotations
 
 import os
-import time
 
 import numba
 import numpy as np
 import scipy.fft
 
 from raytrace import survey
+from timing import median_time
 
 N_PIX = 2048
 FIELD_DEG = 5.0
@@ -26,15 +26,6 @@ SETTINGS = {
     "smoothing": {"kernel": "gaussian", "scales_arcmin": [1.0, 2.0, 4.0], "mask_aware": False},
 }
 MASK_SETTINGS = {"border_arcmin": 2.0, "holes": {"per_deg2": 20.0, "r_min_arcmin": 0.5, "r_max_arcmin": 5.0, "slope": 3.0}}
-
-
-def _median_time(func, repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        func()
-        times.append(time.perf_counter() - t0)
-    return float(np.median(times))
 
 
 def main() -> None:
@@ -47,8 +38,8 @@ def main() -> None:
 
     observe()  # compile the numba hole painter and warm the FFT plans
     scipy.fft.rfft2(kappa, workers=1)
-    t_fft = _median_time(lambda: scipy.fft.rfft2(kappa, workers=1), REPEATS)
-    t_obs = _median_time(observe, REPEATS)
+    t_fft = median_time(lambda: scipy.fft.rfft2(kappa, workers=1), REPEATS, warmup=False)
+    t_obs = median_time(observe, REPEATS, warmup=False)
     threads = os.environ.get("OMP_NUM_THREADS", "unset")
     print(f"map {N_PIX}^2, {REPEATS} repeats; threads: scipy.fft workers=1 (both timings), "
           f"numba {numba.get_num_threads()} (hole painter is serial), OMP_NUM_THREADS={threads}, cpus={os.cpu_count()}")
@@ -58,7 +49,7 @@ def main() -> None:
 
     aware = {**SETTINGS, "smoothing": {**SETTINGS["smoothing"], "mask_aware": True}}
     mask, _ = survey.build_mask(MASK_SETTINGS, N_PIX, FIELD_DEG, seed=1)
-    t_aware = _median_time(lambda: survey.observe_map(kappa, FIELD_DEG, aware, mask=mask, seed=1, workers=1), REPEATS)
+    t_aware = median_time(lambda: survey.observe_map(kappa, FIELD_DEG, aware, mask=mask, seed=1, workers=1), REPEATS, warmup=False)
     print(f"mask-aware smoothing: {1e3 * t_aware:8.1f} ms  ratio {t_aware / t_fft:.2f} (two FFT chains; information only)")
 
 

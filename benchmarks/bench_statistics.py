@@ -21,6 +21,7 @@ import numpy as np
 import scipy.fft
 
 from raytrace.statistics import MapSet, available, build
+from timing import median_time
 
 SMOOTHING_ARCMIN = (1.0, 2.0, 4.0)
 PIXEL_ARCMIN = 0.2
@@ -45,15 +46,6 @@ def smooth(field: np.ndarray, sigma_arcmin: float) -> np.ndarray:
     s = sigma_arcmin / PIXEL_ARCMIN
     window = np.exp(-0.5 * (ky[:, None] ** 2 + kx[None, :] ** 2) * s**2)
     return scipy.fft.irfft2(scipy.fft.rfft2(field) * window, s=field.shape)
-
-
-def median_time(func, repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        func()
-        times.append(time.perf_counter() - t0)
-    return float(np.median(times))
 
 
 def main() -> None:
@@ -95,8 +87,8 @@ def main() -> None:
         cold = time.perf_counter() - t0
         for name in per_stat:
             per_stat[name].clear()
-        total = median_time(run_all, args.repeats)
-    fft = median_time(lambda: scipy.fft.rfft2(raw, workers=1), max(args.repeats, 5))
+        total = median_time(run_all, args.repeats, warmup=False)
+    fft = median_time(lambda: scipy.fft.rfft2(raw, workers=1), max(args.repeats, 5), warmup=False)
 
     print(f"map {args.n_pix}^2, smoothing scales {SMOOTHING_ARCMIN} arcmin, {args.repeats} repeats")
     print(

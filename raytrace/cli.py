@@ -256,58 +256,28 @@ def cmd_observe(args, log: Log) -> None:
 
 
 def cmd_measure(args, log: Log) -> None:
-    import numpy as np
-
     from . import statistics
-    from .hdf5 import atomic_h5, open_input, write_dataset
-
-    s = _settings(args.settings)
+    from .measuring import read_observed, write_measurements
     from .sky import is_sphere_file
 
+    s = _settings(args.settings)
     if is_sphere_file(args.maps):  # the full-sky branch (raytrace.sky)
         from .sky.statistics import measure as measure_sphere
 
         measure_sphere(args.maps, args.output, s, log=log)
         return
-    with open_input(args.maps) as f:
-        for key in ("kappa", "kappa_smoothed", "mask", "noise_sigma"):
-            if key not in f:
-                raise RaytraceError(f"{args.maps}: no {key} dataset (not a file of the observe stage)")
-        kappa = f["kappa"][...].astype(np.float64)
-        smoothed = f["kappa_smoothed"][...].astype(np.float64)
-        mask = f["mask"][...].astype(bool)
-        sigma = f["noise_sigma"][...]
-        sigma_s = f["noise_sigma_smoothed"][...]
-        scales = [float(x) for x in f.attrs["smoothing_arcmin"]]
-        labels = tuple(json.loads(f.attrs["map_labels"]))
-        pixel_arcmin = float(f.attrs["pixel_arcmin"])
+    obs = read_observed(args.maps, attrs=("pixel_arcmin",))
+    pixel_arcmin = float(obs.attrs["pixel_arcmin"])
+    unsmoothed, smoothed = obs.map_sets(
+        lambda maps, scale, noise: statistics.MapSet(maps=maps, mask=obs.mask, pixel_arcmin=pixel_arcmin,
+                                                     smoothing_arcmin=scale, noise_sigma=noise,
+                                                     bin_labels=obs.labels))
 
-    def mapset(maps, scale, noise):
-        return statistics.MapSet(maps=maps, mask=mask, pixel_arcmin=pixel_arcmin, smoothing_arcmin=scale,
-                                 noise_sigma=noise if np.any(noise > 0) else None, bin_labels=labels)
+    def chosen(name, settings):
+        stat = statistics.build(name, settings)
+        return stat.smoothed, stat.measure
 
-    unsmoothed = mapset(kappa, 0.0, sigma)
-    # statistics of smoothed maps run at every scale (on the unsmoothed maps when none is set)
-    smoothed_sets = [mapset(smoothed[i], sc, sigma_s[i]) for i, sc in enumerate(scales)] or [unsmoothed]
-    with atomic_h5(args.output, stage="measure", settings=s, inputs=[args.maps]) as out:
-        out.attrs["map_labels"] = json.dumps(labels)
-        for name, settings in s["statistics"].items():
-            stat = statistics.build(name, settings or {})
-            group = out.create_group(name)
-            for ms in smoothed_sets if stat.smoothed else [unsmoothed]:
-                result = stat.measure(ms)
-                g = group.create_group(scale_label(ms.smoothing_arcmin))
-                g.attrs["smoothing_arcmin"] = ms.smoothing_arcmin
-                write_dataset(g, "values", result.values, result.unit, axes="[entry, bin]")
-                write_dataset(g, "bin_centers", result.bin_centers, result.bin_unit, quantity=result.bin_name)
-                if result.bin_edges is not None:
-                    write_dataset(g, "bin_edges", result.bin_edges, result.bin_unit)
-                g.attrs["entries"] = json.dumps(result.entries)
-                g.attrs["bin_name"] = result.bin_name
-                for key, value in result.extra.items():
-                    write_dataset(g, key, np.asarray(value), "1")
-            log(f"{name}: {len(result.entries)} entries x {len(result.bin_centers)} bins"
-                f" at {len(group)} smoothing scale(s)")
+    write_measurements(args.output, s, args.maps, obs.labels, unsmoothed, smoothed, chosen, log)
 
 
 def cmd_stack(args, log: Log) -> None:
@@ -362,11 +332,6 @@ def cmd_provenance(args, log: Log) -> None:
 
     write_provenance(args.output, _settings(args.config), Path(__file__).resolve().parents[1])
     log(f"provenance written to {args.output}")
-
-
-def scale_label(smoothing_arcmin: float) -> str:
-    """Group name of one smoothing scale in a statistics file."""
-    return "unsmoothed" if smoothing_arcmin == 0 else f"smoothing_{smoothing_arcmin:g}arcmin"
 
 
 # ------------------------------------------------------------------------------------

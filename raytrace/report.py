@@ -54,10 +54,27 @@ def _save(fig, path) -> Path:
     return final
 
 
+
+def observed_map(path, label: str, smoothing_arcmin: float | None, attrs=()) -> tuple[np.ndarray, float, np.ndarray, dict]:
+    """(map, its smoothing scale, mask, chosen attributes) of map ``label`` in an observe-stage
+    file: at the scale nearest ``smoothing_arcmin`` (default the middle one), else unsmoothed."""
+    from .hdf5 import open_input
+
+    with open_input(path) as f:
+        labels = json.loads(f.attrs["map_labels"])
+        scales = [float(s) for s in f.attrs["smoothing_arcmin"]]
+        i = labels.index(label)
+        if scales:
+            k = int(np.argmin(np.abs(np.asarray(scales) - (smoothing_arcmin or scales[len(scales) // 2]))))
+            obs, scale = f["kappa_smoothed"][k, i], scales[k]
+        else:
+            obs, scale = f["kappa"][i], 0.0
+        return obs, scale, f["mask"][...].astype(bool), {key: f.attrs[key] for key in attrs}
+
+
 def plot_example_maps(maps_files: Mapping[str, str], observed_files: Mapping[str, str], label: str,
                       path: str | Path, smoothing_arcmin: float | None = None) -> Path:
     """Noiseless (top) and observed (bottom) convergence of one map label, one column per model."""
-    from .hdf5 import open_input
     from .observe import read_traced
     from .sky import is_sphere_file
 
@@ -75,17 +92,8 @@ def plot_example_maps(maps_files: Mapping[str, str], observed_files: Mapping[str
         if label not in traced.labels:
             raise RaytraceError(f"report.map: {maps_files[model]} has no map {label!r}")
         top.append(traced.kappa[traced.labels.index(label)])
-        with open_input(observed_files[model]) as f:
-            labels = json.loads(f.attrs["map_labels"])
-            scales = [float(s) for s in f.attrs["smoothing_arcmin"]]
-            i = labels.index(label)
-            if scales:
-                k = int(np.argmin(np.abs(np.asarray(scales) - (smoothing_arcmin or scales[len(scales) // 2]))))
-                obs, scale = f["kappa_smoothed"][k, i], scales[k]
-            else:
-                obs, scale = f["kappa"][i], 0.0
-            mask = f["mask"][...].astype(bool)
-            field = float(f.attrs["pixel_arcmin"]) * obs.shape[-1] / 60.0
+        obs, scale, mask, attrs = observed_map(observed_files[model], label, smoothing_arcmin, ("pixel_arcmin",))
+        field = float(attrs["pixel_arcmin"]) * obs.shape[-1] / 60.0
         bottom.append(np.where(mask, obs, np.nan))
     extent = [0, field, 0, field]
     lim_t = np.nanpercentile(np.abs(np.array(top)), 99.5)

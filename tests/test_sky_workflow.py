@@ -17,7 +17,7 @@ import yaml
 from raytrace import config as rc
 from raytrace.errors import RaytraceError
 
-from test_workflow import planned_jobs, snakemake
+from workflow_helpers import check_jobs_within_requests, planned_jobs, snakemake
 
 ROOT = Path(__file__).resolve().parents[1]
 SPHERE = yaml.safe_load((ROOT / "config" / "sphere_small.yaml").read_text())
@@ -73,24 +73,9 @@ def test_sphere_outputs(sphere_run):
 
 
 def test_sphere_jobs_fit_in_what_they_ask_for(sphere_run):
-    # the shells and trace_sphere estimates (raytrace/resources.py): peak memory within the
-    # request, CPU time within the time factor, as for the flat rules in test_workflow.py
-    import csv
-
-    from raytrace import resources as rr
-
+    # the shells and trace_sphere estimates (raytrace/resources.py), as for the flat rules
     work, cfg = sphere_run
-    full = rc.validate(copy.deepcopy(cfg))
-    seen = set()
-    for tsv in (work / "logs/benchmarks").rglob("*.tsv"):
-        rule = tsv.parent.name
-        model = next((m for m in full["suite"]["models"] if tsv.stem.startswith(m)), None)
-        want = rr.estimate(rule, full, model=model)
-        with open(tsv) as f:
-            row = next(csv.DictReader(f, delimiter="\t"))
-        assert float(row["max_rss"]) <= want.mem_mb, (tsv, row["max_rss"], want)
-        assert float(row["cpu_time"]) <= want.cpu_s * rr.TIME_FACTOR, (tsv, row["cpu_time"], want)
-        seen.add(rule)
+    seen = check_jobs_within_requests(work, rc.validate(copy.deepcopy(cfg)))
     assert {"shells", "trace_sphere", "observe", "measure"} <= seen
 
 

@@ -14,7 +14,7 @@ from raytrace import config as rc
 from raytrace.errors import RaytraceError
 
 from test_errors import SMALL, assert_nothing_written, one_error_line, run
-from test_workflow import planned_jobs, snakemake, tiny_config
+from workflow_helpers import planned_jobs, snakemake, tiny_config
 
 
 def with_systematics(systematics, sources=True):

@@ -242,3 +242,24 @@ def check_resume(reference: Path, work: Path, cfg: dict, killed: tuple[str, str]
 def check_kill_and_resume(reference: Path, work: Path, cfg: dict, killed: tuple[str, str], resume) -> None:
     check_killed(reference, work, killed)
     check_resume(reference, work, cfg, killed, resume)
+
+
+def check_jobs_within_requests(work: Path, full: dict) -> set[str]:
+    """Every job's record in ``logs/benchmarks`` (peak memory, CPU time) fits in what its rule
+    asks for (raytrace/resources.py: the memory request, the CPU estimate times the time factor);
+    returns the rules seen. The wall time on a shared machine says little, so CPU time is used."""
+    import csv
+
+    from raytrace import resources as rr
+
+    seen = set()
+    for tsv in (work / "logs/benchmarks").rglob("*.tsv"):
+        rule = tsv.parent.name
+        model = next((m for m in full["suite"]["models"] if tsv.stem.startswith(m)), None)
+        want = rr.estimate(rule, full, model=model)
+        with open(tsv) as f:
+            row = next(csv.DictReader(f, delimiter="\t"))
+        assert float(row["max_rss"]) <= want.mem_mb, (tsv, row["max_rss"], want)
+        assert float(row["cpu_time"]) <= want.cpu_s * rr.TIME_FACTOR, (tsv, row["cpu_time"], want)
+        seen.add(rule)
+    return seen

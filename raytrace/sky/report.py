@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 from typing import Mapping
 
@@ -24,8 +23,7 @@ def mollweide(m: np.ndarray, xsize: int = 480) -> np.ndarray:
 def plot_example_maps(maps_files: Mapping[str, str], observed_files: Mapping[str, str], label: str,
                       path: str | Path, smoothing_arcmin: float | None = None) -> Path:
     """Noiseless (top) and observed (bottom) full-sky convergence of one map, one column per model."""
-    from ..hdf5 import open_input
-    from ..report import _pyplot, _save
+    from ..report import _pyplot, _save, observed_map
     from .survey import read_sky_maps
 
     plt = _pyplot()
@@ -36,16 +34,8 @@ def plot_example_maps(maps_files: Mapping[str, str], observed_files: Mapping[str
         if label not in traced.labels:
             raise RaytraceError(f"report.map: {maps_files[model]} has no map {label!r}")
         top.append(mollweide(traced.kappa[traced.labels.index(label)]))
-        with open_input(observed_files[model]) as f:
-            labels = json.loads(f.attrs["map_labels"])
-            scales = [float(s) for s in f.attrs["smoothing_arcmin"]]
-            i = labels.index(label)
-            if scales:
-                k = int(np.argmin(np.abs(np.asarray(scales) - (smoothing_arcmin or scales[len(scales) // 2]))))
-                obs, scale = f["kappa_smoothed"][k, i], scales[k]
-            else:
-                obs = f["kappa"][i]
-            mask = f["mask"][...].astype(bool)
+        obs, scale_k, mask, _ = observed_map(observed_files[model], label, smoothing_arcmin)
+        scale = scale_k or scale
         bottom.append(mollweide(np.where(mask, obs, np.nan)))
     fig, axes = plt.subplots(2, len(models), figsize=(3.2 * len(models) + 0.8, 4.2), squeeze=False)
     lim_t = np.nanpercentile(np.abs(np.array(top)), 99.5)

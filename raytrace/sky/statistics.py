@@ -54,7 +54,6 @@ Bond, J. R. & Efstathiou, G. 1987, MNRAS 226, 655 (peaks of Gaussian fields).
 from __future__ import annotations
 
 import hashlib
-import json
 import math
 from dataclasses import dataclass
 from pathlib import Path
@@ -64,7 +63,6 @@ import numpy as np
 from numba import njit
 
 from ..errors import RaytraceError
-from ..hdf5 import atomic_h5, open_input, write_dataset
 from ..statistics import Measurement, pair_labels
 from ..statistics.moments import MIN_MARGIN_PIX, MOMENT_NAMES, field_moments
 from ..statistics.pdf import row_runs, threshold_edges
@@ -72,7 +70,6 @@ from ..statistics.peaks import bin_counts
 from .config import SPHERE_STATISTICS
 from .pixels import DEG2_PER_SR, npix, pixel_area_sr, pixel_arcmin
 from .pixels import pixel_window as pixel_window_fn
-
 
 
 @dataclass(frozen=True)
@@ -371,45 +368,19 @@ MEASURES: dict[str, tuple[Callable[[SkyMapSet, Mapping[str, Any]], Measurement],
 def measure(path: str | Path, output: str | Path, settings: Mapping[str, Any],
             log: Callable[[str], None] = lambda s: None) -> None:
     """The measuring stage for one sphere observed-map file (layout in the module notes)."""
-    from ..cli import scale_label
+    from ..measuring import read_observed, write_measurements
 
-    with open_input(path) as f:
-        for key in ("kappa", "kappa_smoothed", "mask", "noise_sigma"):
-            if key not in f:
-                raise RaytraceError(f"{path}: no {key} dataset (not a file of the observe stage)")
-        kappa = f["kappa"][...].astype(np.float64)
-        smoothed = f["kappa_smoothed"][...].astype(np.float64)
-        mask = f["mask"][...].astype(bool)
-        sigma = f["noise_sigma"][...]
-        sigma_s = f["noise_sigma_smoothed"][...]
-        scales = [float(x) for x in f.attrs["smoothing_arcmin"]]
-        labels = tuple(json.loads(f.attrs["map_labels"]))
-        nside = int(f.attrs["nside"])
+    obs = read_observed(path, attrs=("nside",))
+    nside = int(obs.attrs["nside"])
+    unsmoothed, smoothed = obs.map_sets(lambda maps, scale, noise: SkyMapSet(maps, obs.mask, nside, scale, noise,
+                                                                             obs.labels))
 
-    def mapset(maps, scale, noise):
-        return SkyMapSet(maps, mask, nside, scale, noise if np.any(noise > 0) else None, labels)
+    def chosen(name, stat_settings):
+        if name not in MEASURES:
+            raise RaytraceError(f"statistics.{name}: not available with maps.geometry: sphere "
+                                f"(available: {', '.join(SPHERE_STATISTICS)})")
+        fn, per_scale = MEASURES[name]
+        return per_scale, lambda ms: fn(ms, stat_settings)
 
-    unsmoothed = mapset(kappa, 0.0, sigma)
-    smoothed_sets = [mapset(smoothed[i], s, sigma_s[i]) for i, s in enumerate(scales)] or [unsmoothed]
-    with atomic_h5(output, stage="measure", settings=settings, inputs=[path]) as out:
-        out.attrs["map_labels"] = json.dumps(labels)
-        out.attrs["geometry"] = "sphere"
-        for name, stat_settings in settings["statistics"].items():
-            if name not in MEASURES:
-                raise RaytraceError(f"statistics.{name}: not available with maps.geometry: sphere "
-                                    f"(available: {', '.join(SPHERE_STATISTICS)})")
-            fn, per_scale = MEASURES[name]
-            group = out.create_group(name)
-            for ms in smoothed_sets if per_scale else [unsmoothed]:
-                result = fn(ms, stat_settings or {})
-                g = group.create_group(scale_label(ms.smoothing_arcmin))
-                g.attrs["smoothing_arcmin"] = ms.smoothing_arcmin
-                write_dataset(g, "values", result.values, result.unit, axes="[entry, bin]")
-                write_dataset(g, "bin_centers", result.bin_centers, result.bin_unit, quantity=result.bin_name)
-                if result.bin_edges is not None:
-                    write_dataset(g, "bin_edges", result.bin_edges, result.bin_unit)
-                g.attrs["entries"] = json.dumps(result.entries)
-                g.attrs["bin_name"] = result.bin_name
-                for key, value in result.extra.items():
-                    write_dataset(g, key, np.asarray(value), "1")
-            log(f"{name}: {len(result.entries)} entries x {len(result.bin_centers)} bins at {len(group)} smoothing scale(s)")
+    write_measurements(output, settings, path, obs.labels, unsmoothed, smoothed, chosen, log,
+                       file_attrs={"geometry": "sphere"})
