@@ -11,7 +11,7 @@ from __future__ import annotations
 import json
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Iterable, Mapping
+from typing import Any, Callable, Iterable, Mapping, Sequence
 
 import numpy as np
 
@@ -51,6 +51,27 @@ class ObservedMaps:
         unsmoothed = make(self.kappa, 0.0, noise(self.noise_sigma))
         smoothed = [make(self.smoothed[i], s, noise(self.noise_sigma_smoothed[i])) for i, s in enumerate(self.scales)]
         return unsmoothed, smoothed or [unsmoothed]
+
+
+def write_observed(f, noisy: Mapping[str, np.ndarray], smoothed: np.ndarray, mask: np.ndarray, sigma: np.ndarray,
+                   sigma_smoothed: np.ndarray, *, pixel_axes: str, labels: Sequence[str], scales: Sequence[float],
+                   kernel: str, mask_parts: Mapping[str, float]) -> None:
+    """Write the arrays and shared attributes of an observe-stage file into the open HDF5 file
+    ``f`` (both geometries; ``pixel_axes`` is ``"iy, ix"`` or ``"pixel"``). The reader is
+    :func:`read_observed`; each geometry adds its own attributes."""
+    from .hdf5 import write_dataset
+
+    for key, value in noisy.items():
+        write_dataset(f, key, value.astype(np.float32), "1", axes=f"[map, {pixel_axes}]")
+    write_dataset(f, "kappa_smoothed", smoothed.astype(np.float32), "1", axes=f"[scale, map, {pixel_axes}]")
+    write_dataset(f, "mask", mask.astype(np.uint8), "1", description="1 where the pixel is observed")
+    write_dataset(f, "noise_sigma", sigma, "1", axes="[map]")
+    write_dataset(f, "noise_sigma_smoothed", sigma_smoothed, "1", axes="[scale, map]")
+    f.attrs["smoothing_arcmin"] = np.asarray(scales, dtype=float)
+    f.attrs["smoothing_kernel"] = kernel
+    f.attrs["valid_fraction"] = float(mask.mean())
+    f.attrs["mask_parts"] = json.dumps(dict(mask_parts))
+    f.attrs["map_labels"] = json.dumps(list(labels))
 
 
 def read_observed(path: str | Path, attrs: Iterable[str] = ()) -> ObservedMaps:

@@ -47,7 +47,8 @@ import numpy as np
 
 from . import survey
 from .errors import RaytraceError
-from .hdf5 import atomic_h5, open_input, write_dataset
+from .hdf5 import atomic_h5, open_input
+from .measuring import write_observed
 from .systematics import KEY as SYSTEMATICS, Nuisance, kaiser_squires
 
 
@@ -282,19 +283,10 @@ def observe(
                 sigma_s[:, b] = [survey.smoothed_noise_sigma(sigma[b], n_pix, field_deg, sc, kernel) for sc in scales]
         log(f"{maps.labels[b]}: noise rms {sigma[b]:.4g} per pixel, {len(scales)} smoothing scales")
     with atomic_h5(output, stage="observe", settings=settings, inputs=[maps_path], seed=seed) as f:
-        for key, value in noisy.items():
-            write_dataset(f, key, value.astype(np.float32), "1", axes="[map, iy, ix]")
-        write_dataset(f, "kappa_smoothed", smoothed.astype(np.float32), "1", axes="[scale, map, iy, ix]")
-        write_dataset(f, "mask", mask.astype(np.uint8), "1", description="1 where the pixel is observed")
-        write_dataset(f, "noise_sigma", sigma, "1", axes="[map]")
-        write_dataset(f, "noise_sigma_smoothed", sigma_s, "1", axes="[scale, map]")
+        write_observed(f, noisy, smoothed, mask, sigma, sigma_s, pixel_axes="iy, ix", labels=maps.labels,
+                       scales=scales, kernel=kernel, mask_parts=parts)
         f.attrs["field_deg"] = field_deg
         f.attrs["pixel_arcmin"] = survey.pixel_arcmin(n_pix, field_deg)
-        f.attrs["smoothing_arcmin"] = np.asarray(scales, dtype=float)
-        f.attrs["smoothing_kernel"] = kernel
-        f.attrs["valid_fraction"] = float(mask.mean())
-        f.attrs["mask_parts"] = json.dumps(parts)
-        f.attrs["map_labels"] = json.dumps(maps.labels)
         f.attrs["galaxies_per_arcmin2"] = densities
         f.attrs["realization"] = int(realization)
         f.attrs["noise_seed"] = noise_seed

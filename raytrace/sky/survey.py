@@ -65,7 +65,8 @@ import numpy as np
 
 from .. import survey as flat_survey
 from ..errors import RaytraceError
-from ..hdf5 import atomic_file, atomic_h5, open_input, write_dataset
+from ..hdf5 import atomic_file, atomic_h5, open_input
+from ..measuring import write_observed
 from .config import SPHERE_MASK_KEYS
 from .pixels import FULL_SKY_DEG2, lonlat_vector, npix, pixel_arcmin, pixel_area_sr, pixel_vectors
 
@@ -295,21 +296,12 @@ def observe(maps_path: str | Path, output: str | Path, settings: Mapping[str, An
         sigma_s[:, b] = [smoothed_noise_sigma(sigma[b], nside, s, kernel) for s in scales]
         log(f"{maps.labels[b]}: noise rms {sigma[b]:.4g} per pixel, {len(scales)} smoothing scales")
     with atomic_h5(output, stage="observe", settings=settings, inputs=[maps_path], seed=seed) as f:
-        for key, value in noisy.items():
-            write_dataset(f, key, value.astype(np.float32), "1", axes="[map, pixel]")
-        write_dataset(f, "kappa_smoothed", smoothed.astype(np.float32), "1", axes="[scale, map, pixel]")
-        write_dataset(f, "mask", mask.astype(np.uint8), "1", description="1 where the pixel is observed")
-        write_dataset(f, "noise_sigma", sigma, "1", axes="[map]")
-        write_dataset(f, "noise_sigma_smoothed", sigma_s, "1", axes="[scale, map]")
+        write_observed(f, noisy, smoothed, mask, sigma, sigma_s, pixel_axes="pixel", labels=maps.labels,
+                       scales=scales, kernel=kernel, mask_parts=parts)
         f.attrs["geometry"] = "sphere"
         f.attrs["nside"] = nside
         f.attrs["ordering"] = "RING"
         f.attrs["pixel_arcmin"] = pixel_arcmin(nside)
-        f.attrs["smoothing_arcmin"] = np.asarray(scales, dtype=float)
-        f.attrs["smoothing_kernel"] = kernel
-        f.attrs["valid_fraction"] = float(mask.mean())
-        f.attrs["mask_parts"] = json.dumps(parts)
-        f.attrs["map_labels"] = json.dumps(maps.labels)
         f.attrs["galaxies_per_arcmin2"] = n_total * maps.density_fraction
         f.attrs["map_area_deg2"] = FULL_SKY_DEG2
         f.attrs["realization"] = int(realization)
